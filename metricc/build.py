@@ -1,0 +1,299 @@
+"""Stage 5: sources -> cached, compiled kernels.
+
+The cache (``$METRICC_CACHE_DIR``, else ``$XDG_CACHE_HOME/metricc``, else ``~/.cache/metricc``)
+holds one folder per *spec key*: sha256 of the spec's canonical content, the metricc version
+and the build options. A warm load finds that folder from the spec text alone, without
+importing sympy. The folder holds the generated sources, ``manifest.json`` (what the runtime
+needs to know about the kernels) and, once compiled, the cffi extension named
+``_metricc_<hash16>`` after the *binary key*: sha256 of the extension's C source, the compiler
+command, the Python ABI tag and the metricc version.
+
+Publishing is atomic: a folder is built under a temporary name inside the cache and renamed
+into place; a file is written to a temporary name and ``os.replace``d. A lock file only saves
+duplicate work when several processes build the same spec at once; a half-written entry is
+never visible.
+"""
+from __future__ import annotations
+
+import contextlib
+import hashlib
+import importlib.machinery
+import importlib.util
+import json
+import os
+import shlex
+import shutil
+import subprocess
+import sys
+import sysconfig
+import tempfile
+import time
+from dataclasses import dataclass
+from pathlib import Path
+
+from ._version import __version__
+from .errors import BuildError
+from .spec import Spec
+
+MANIFEST = "manifest.json"
+MANIFEST_FORMAT = 1
+COMPILE_FLAGS = ("-O2", "-std=c99", "-fPIC", "-fno-math-errno", "-ffp-contract=off")
+
+
+def cache_root() -> Path:
+    """The cache folder (created on first use)."""
+    env = os.environ.get("METRICC_CACHE_DIR")
+    if env:
+        return Path(env)
+    xdg = os.environ.get("XDG_CACHE_HOME")
+    base = Path(xdg) if xdg else Path.home() / ".cache"
+    return base / "metricc"
+
+
+def spec_key(spec: Spec, options: dict | None = None) -> str:
+    """sha256 over what determines the generated sources: spec content, version, options."""
+    payload = json.dumps({"spec": spec.canonical, "version": __version__,
+                          "options": options or {}}, sort_keys=True)
+    return hashlib.sha256(payload.encode()).hexdigest()
+
+
+def atomic_write(path: Path, data: str | bytes) -> None:
+    """Write a file so that readers see either the old or the whole new content."""
+    path = Path(path)
+    mode = "wb" if isinstance(data, bytes) else "w"
+    try:
+        perms = path.stat().st_mode & 0o777
+    except OSError:
+        perms = 0o644
+    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
+    try:
+        os.chmod(tmp, perms)
+        with os.fdopen(fd, mode, **({} if isinstance(data, bytes) else {"encoding": "utf-8",
+                                                                        "newline": "\n"})) as f:
+            f.write(data)
+        os.replace(tmp, path)
+    except BaseException:
+        with contextlib.suppress(OSError):
+            os.unlink(tmp)
+        raise
+
+
+@contextlib.contextmanager
+def _lock(path: Path):
+    try:
+        import fcntl
+    except ImportError:  # pragma: no cover - not POSIX: no lock, publication stays atomic
+        yield
+        return
+    path.parent.mkdir(parents=True, exist_ok=True)
+    with open(path, "a+") as f:
+        fcntl.flock(f, fcntl.LOCK_EX)
+        try:
+            yield
+        finally:
+            fcntl.flock(f, fcntl.LOCK_UN)
+
+
+@dataclass(frozen=True)
+class CacheEntry:
+    """One spec's folder in the cache and its manifest."""
+    directory: Path
+    manifest: dict
+
+    @property
+    def has_binary(self) -> bool:
+        b = self.manifest.get("binary")
+        return bool(b) and (self.directory / b["file"]).is_file()
+
+    def path(self, filename: str) -> Path:
+        return self.directory / filename
+
+
+def _read_manifest(directory: Path) -> dict | None:
+    try:
+        with open(directory / MANIFEST, encoding="utf-8") as f:
+            m = json.load(f)
+    except (OSError, ValueError):
+        return None
+    if m.get("format") != MANIFEST_FORMAT or m.get("metricc_version") != __version__:
+        return None
+    return m
+
+
+def lookup(spec: Spec, options: dict | None = None) -> CacheEntry | None:
+    """The cache entry of a spec if it exists (no sympy, no compiler)."""
+    directory = cache_root() / spec_key(spec, options)[:32]
+    m = _read_manifest(directory)
+    return CacheEntry(directory, m) if m is not None else None
+
+
+def ensure_sources(spec: Spec, options: dict | None = None) -> CacheEntry:
+    """The cache entry of a spec, generating its sources (sympy) on a miss."""
+    entry = lookup(spec, options)
+    if entry is not None:
+        return entry
+    root = cache_root()
+    root.mkdir(parents=True, exist_ok=True)
+    key = spec_key(spec, options)
+    directory = root / key[:32]
+    with _lock(root / f".{key[:32]}.lock"):
+        entry = lookup(spec, options)
+        if entry is not None:
+            return entry
+        from .pipeline import generate  # imports sympy: only on a miss
+        result = generate(spec)
+        tmp = Path(tempfile.mkdtemp(dir=root, prefix=".build-"))
+        try:
+            for name, text in result.sources.files.items():
+                atomic_write(tmp / name, text)
+            manifest = manifest_of(result)
+            atomic_write(tmp / MANIFEST, json.dumps(manifest, indent=1, sort_keys=True))
+            if directory.exists():  # a stale entry (other version or format): replace it
+                shutil.rmtree(directory, ignore_errors=True)
+            try:
+                os.rename(tmp, directory)
+            except OSError:
+                if _read_manifest(directory) is None:
+                    raise
+        finally:
+            shutil.rmtree(tmp, ignore_errors=True)
+    entry = lookup(spec, options)
+    if entry is None:  # pragma: no cover
+        raise BuildError(f"cache entry {directory} could not be published")
+    return entry
+
+
+def manifest_of(result) -> dict:
+    """What the runtime needs about a KernelSet, as JSON-ready data."""
+    ks = result.kernels
+    return {
+        "format": MANIFEST_FORMAT,
+        "metricc_version": __version__,
+        "name": ks.name,
+        "summary": ks.summary,
+        "spec_sha256": ks.spec_sha256,
+        "coordinates": list(ks.coordinates),
+        "parameters": [[p, v] for p, v in ks.parameters],
+        "kernels": {k.name: {"input": k.input_name, "input_size": len(k.input_symbols),
+                             "output_shape": list(k.output_shape), "ops_before": k.ops_before,
+                             "ops_after": k.ops_after} for k in ks.kernels},
+        "ignorable": list(ks.ignorable),
+        "domain": list(ks.domain),
+        "events": list(ks.events),
+        "signature": list(ks.signature),
+        "inverse_strategy": ks.inverse_strategy,
+        "inverse_blocks": list(ks.inverse_blocks),
+        "files": sorted(result.sources.files),
+        "cdef": result.cdef,
+        "derive_seconds": round(result.seconds, 3),
+        "binary": None,
+    }
+
+
+# -- compiling -------------------------------------------------------------------------------
+def compiler_command() -> list[str]:
+    """The C compiler as argv: $CC, else the compiler Python was built with, else cc."""
+    cc = os.environ.get("CC") or sysconfig.get_config_var("CC") or "cc"
+    return shlex.split(cc)
+
+
+def _link_flags() -> list[str]:
+    if sys.platform == "darwin":
+        return ["-bundle", "-undefined", "dynamic_lookup"]
+    return ["-shared"]
+
+
+def extension_source(entry: CacheEntry, module_name: str) -> str:
+    """The C source of the cffi extension module (kernels inlined)."""
+    import cffi
+    name = entry.manifest["name"]
+    header = entry.path(f"{name}.h").read_text(encoding="utf-8")
+    body = entry.path(f"{name}.c").read_text(encoding="utf-8")
+    body = body.replace(f'#include "{name}.h"', "/* header inlined below */\n" + header, 1)
+    from cffi.recompiler import recompile
+    ffi = cffi.FFI()
+    ffi.cdef(entry.manifest["cdef"])
+    with tempfile.TemporaryDirectory() as tmp:
+        out = Path(tmp) / "module.c"
+        # recompile() without calling the compiler is what FFI.emit_c_code does, minus its
+        # "generating ..." message on stdout.
+        recompile(ffi, module_name, body, c_file=str(out), call_c_compiler=False,
+                  uses_ffiplatform=False, compiler_verbose=False)
+        return out.read_text(encoding="utf-8")
+
+
+def ensure_binary(entry: CacheEntry) -> CacheEntry:
+    """Compile the entry's extension if it has none yet; raises BuildError on failure."""
+    if entry.has_binary:
+        return entry
+    with _lock(entry.directory.parent / f".{entry.directory.name}.lock"):
+        m = _read_manifest(entry.directory)
+        if m is not None and CacheEntry(entry.directory, m).has_binary:
+            return CacheEntry(entry.directory, m)
+        cc = compiler_command()
+        if shutil.which(cc[0]) is None:
+            raise BuildError(f"no C compiler: {cc[0]!r} not found (set CC, or use "
+                             "backend='numpy')")
+        ext = sysconfig.get_config_var("EXT_SUFFIX") or ".so"
+        include = sysconfig.get_paths()["include"]
+        probe_name = "_metricc_probe"
+        source_for_key = extension_source(entry, probe_name)
+        argv_for_key = cc + list(COMPILE_FLAGS) + _link_flags()
+        bkey = hashlib.sha256(json.dumps([source_for_key, argv_for_key, ext, __version__])
+                              .encode()).hexdigest()
+        module_name = f"_metricc_{bkey[:16]}"
+        source = source_for_key.replace(probe_name, module_name)
+        filename = module_name + ext
+        with tempfile.TemporaryDirectory(dir=entry.directory, prefix=".cc-") as tmp:
+            c_file = Path(tmp) / f"{module_name}.c"
+            c_file.write_text(source, encoding="utf-8")
+            out = Path(tmp) / filename
+            argv = cc + list(COMPILE_FLAGS) + ["-I", include] + _link_flags() + \
+                [str(c_file), "-o", str(out), "-lm"]
+            t0 = time.perf_counter()
+            try:
+                proc = subprocess.run(argv, capture_output=True, text=True, timeout=600)
+            except (OSError, subprocess.TimeoutExpired) as exc:
+                raise BuildError(f"C compiler failed to run: {exc}") from None
+            if proc.returncode != 0 or not out.is_file():
+                tail = (proc.stderr or proc.stdout).strip().splitlines()[-15:]
+                raise BuildError("C compilation failed (" + " ".join(argv[:3]) + " ...):\n"
+                                 + "\n".join(tail))
+            os.replace(out, entry.directory / filename)
+        m = dict(entry.manifest)
+        m["binary"] = {"module": module_name, "file": filename, "key": bkey,
+                       "compile_seconds": round(time.perf_counter() - t0, 3),
+                       "compiler": " ".join(cc)}
+        atomic_write(entry.directory / MANIFEST, json.dumps(m, indent=1, sort_keys=True))
+        return CacheEntry(entry.directory, m)
+
+
+def load_extension(entry: CacheEntry):
+    """Import the entry's compiled extension module (once per process)."""
+    b = entry.manifest["binary"]
+    name = b["module"]
+    if name in sys.modules:
+        return sys.modules[name]
+    path = entry.directory / b["file"]
+    loader = importlib.machinery.ExtensionFileLoader(name, str(path))
+    spec = importlib.util.spec_from_file_location(name, str(path), loader=loader)
+    module = importlib.util.module_from_spec(spec)
+    try:
+        loader.exec_module(module)
+    except ImportError as exc:
+        raise BuildError(f"cannot load compiled kernels {path}: {exc}") from None
+    sys.modules[name] = module
+    return module
+
+
+def load_numpy_module(entry: CacheEntry):
+    """Import the entry's generated NumPy module (once per process)."""
+    name = f"_metricc_np_{entry.manifest['spec_sha256'][:16]}_{entry.directory.name[:8]}"
+    if name in sys.modules:
+        return sys.modules[name]
+    path = entry.path(f"{entry.manifest['name']}_numpy.py")
+    spec = importlib.util.spec_from_file_location(name, str(path))
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    sys.modules[name] = module
+    return module

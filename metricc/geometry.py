@@ -1,0 +1,408 @@
+"""Stage 2: Spec -> Geometry (sympy).
+
+Turns the spec's expression trees into sympy objects (built node by node, never via sympify),
+assembles the metric, differentiates it, picks how the inverse metric is obtained, and forms
+the pieces every right-hand side is made of. It also checks the metric numerically at sample
+points inside the domain (finite, symmetric by construction, non-singular, signature).
+
+Index conventions: coordinates x^i, i = 0..dim-1 in spec order; ``dmetric[k][i, j]`` is
+d g_{ij} / d x^k; ``christoffel_first[d][b][c]`` is Gamma_{d bc} (first kind).
+
+Internal symbol names are mangled (``c0`` for coordinate 0, ``q0`` for parameter 0, ``v0`` for
+velocity component 0, ``p0`` for momentum 0, ``g0_1`` for the metric entry g_01): no spec name
+ever becomes an identifier in generated code.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+from fractions import Fraction
+
+import numpy as np
+import sympy as sp
+
+from . import expr as ex
+from .sampling import sample_inside
+from .spec import Expression, Spec
+
+MAX_EXPONENT = 64          # |n| for a numeric exponent
+MAX_NUMBER_BITS = 20_000   # size of any exact number built while reading a spec
+SAMPLE_POINTS = 32
+
+_FUNCS = {
+    "sin": sp.sin, "cos": sp.cos, "tan": sp.tan, "asin": sp.asin, "acos": sp.acos,
+    "atan": sp.atan, "atan2": sp.atan2, "sinh": sp.sinh, "cosh": sp.cosh, "tanh": sp.tanh,
+    "asinh": sp.asinh, "acosh": sp.acosh, "atanh": sp.atanh, "exp": sp.exp, "log": sp.log,
+    "sqrt": sp.sqrt, "abs": sp.Abs,
+}
+
+
+def coordinate_symbols(dim: int) -> tuple[sp.Symbol, ...]:
+    return tuple(sp.Symbol(f"c{i}", real=True) for i in range(dim))
+
+
+def velocity_symbols(dim: int) -> tuple[sp.Symbol, ...]:
+    return tuple(sp.Symbol(f"v{i}", real=True) for i in range(dim))
+
+
+def momentum_symbols(dim: int) -> tuple[sp.Symbol, ...]:
+    return tuple(sp.Symbol(f"p{i}", real=True) for i in range(dim))
+
+
+def parameter_symbols(n: int) -> tuple[sp.Symbol, ...]:
+    return tuple(sp.Symbol(f"q{j}", real=True) for j in range(n))
+
+
+@dataclass(frozen=True)
+class InverseBlock:
+    """One diagonal block of the metric and how its inverse is obtained.
+
+    indices: the coordinates of the block. strategy: ``"symbolic"`` (closed form in the metric
+    entries, ``inverse`` holds it in terms of the entry symbols) or ``"numeric"`` (a small
+    linear solve at run time). cost_symbolic / cost_numeric: estimated operations of each way.
+    """
+    indices: tuple[int, ...]
+    strategy: str
+    inverse: sp.ImmutableMatrix | None
+    cost_symbolic: int | None
+    cost_numeric: int
+
+
+@dataclass(frozen=True)
+class Geometry:
+    """Symbolic geometry of one spec. All matrices are sympy ImmutableMatrix.
+
+    metric: (dim, dim) g_{ij} in coordinates and parameters.
+    metric_symbols: (dim, dim) symbols g{i}_{j} (shared for i, j and j, i) that stand for the
+        metric entries inside inverse expressions.
+    dmetric: tuple over k of (dim, dim) d_k g_{ij}.
+    blocks: block-diagonal structure of the metric with the inverse strategy of each block.
+    ignorable: coordinates the metric does not depend on (their momenta are conserved).
+    signature: (negative, positive) eigenvalue counts seen at the sample points.
+    """
+    spec: Spec
+    coords: tuple[sp.Symbol, ...]
+    params: tuple[sp.Symbol, ...]
+    velocity: tuple[sp.Symbol, ...]
+    momentum: tuple[sp.Symbol, ...]
+    metric: sp.ImmutableMatrix
+    metric_symbols: sp.ImmutableMatrix
+    dmetric: tuple[sp.ImmutableMatrix, ...]
+    blocks: tuple[InverseBlock, ...]
+    ignorable: tuple[int, ...]
+    domain: tuple[tuple[str, sp.Expr], ...]
+    events: tuple[tuple[str, sp.Expr], ...]
+    signature: tuple[int, int]
+
+    @property
+    def dim(self) -> int:
+        return len(self.coords)
+
+    @property
+    def inverse_strategy(self) -> str:
+        """"symbolic", "numeric" or "mixed" over the metric's diagonal blocks."""
+        kinds = {b.strategy for b in self.blocks}
+        return kinds.pop() if len(kinds) == 1 else "mixed"
+
+    def christoffel_first(self, d: int, b: int, c: int) -> sp.Expr:
+        """Gamma_{d bc} = 1/2 (d_b g_dc + d_c g_db - d_d g_bc)."""
+        dg = self.dmetric
+        return (dg[b][d, c] + dg[c][d, b] - dg[d][b, c]) / 2
+
+    def geodesic_force(self) -> tuple[sp.Expr, ...]:
+        """w_d = Gamma_{d bc} u^b u^c, so that du^a/dlambda = -g^{ad} w_d.
+
+        Uses Gamma_{d bc} u^b u^c = (d_b g_dc - 1/2 d_d g_bc) u^b u^c, which needs one
+        derivative term fewer than the textbook form.
+        """
+        n, u, dg = self.dim, self.velocity, self.dmetric
+        out = []
+        for d in range(n):
+            total = sp.S.Zero
+            for b in range(n):
+                inner = sp.Add(*[dg[b][d, c] * u[c] for c in range(n)])
+                total += u[b] * inner
+            quad = sp.Add(*[dg[d][b, c] * u[b] * u[c] for b in range(n) for c in range(n)])
+            out.append(total - quad / 2)
+        return tuple(out)
+
+    def hamilton_force(self) -> tuple[sp.Expr, ...]:
+        """dp_k/dlambda = -1/2 d_k g^{ij} p_i p_j = +1/2 d_k g_{ij} u^i u^j with u = g^{-1} p.
+
+        The right form avoids differentiating the inverse metric.
+        """
+        n, u, dg = self.dim, self.velocity, self.dmetric
+        return tuple(sp.Add(*[dg[k][i, j] * u[i] * u[j] for i in range(n) for j in range(n)]) / 2
+                     for k in range(n))
+
+    def norm(self) -> sp.Expr:
+        """g_{ij} u^i u^j in terms of the metric entry symbols and the velocity."""
+        n, u, gs = self.dim, self.velocity, self.metric_symbols
+        return sp.Add(*[gs[i, j] * u[i] * u[j] for i in range(n) for j in range(n)])
+
+
+def derive(spec: Spec) -> Geometry:
+    """Build the symbolic geometry of a validated spec; raises SpecError on bad metrics."""
+    dim = spec.dim
+    coords = coordinate_symbols(dim)
+    params = parameter_symbols(len(spec.parameters))
+    env: dict[str, sp.Expr] = {name: s for name, s in zip(spec.coordinates, coords)}
+    env.update({name: s for (name, _), s in zip(spec.parameters, params)})
+    for name, e in spec.defines:
+        env[name] = _to_sympy(spec, e, env)
+
+    if spec.line_element is not None:
+        metric = _metric_from_line_element(spec, env, coords)
+    else:
+        entries = [[sp.S.Zero] * dim for _ in range(dim)]
+        for (i, j), e in spec.metric:
+            value = _to_sympy(spec, e, env)
+            entries[i][j] = entries[j][i] = value
+        metric = sp.ImmutableMatrix(entries)
+
+    dmetric = tuple(sp.ImmutableMatrix(dim, dim, lambda i, j, k=k: sp.diff(metric[i, j], coords[k]))
+                    for k in range(dim))
+    domain = tuple((name, _to_sympy(spec, e, env)) for name, e in spec.domain)
+    events = tuple((name, _to_sympy(spec, e, env)) for name, e in spec.events)
+    ignorable = tuple(k for k in range(dim)
+                      if all(not metric[i, j].has(coords[k]) for i in range(dim) for j in range(dim)))
+    gsyms = sp.ImmutableMatrix(dim, dim, lambda i, j: sp.Symbol(f"g{min(i, j)}_{max(i, j)}",
+                                                                 real=True))
+    blocks = _inverse_blocks(metric, gsyms)
+    signature = _check_numerically(spec, metric, domain, coords, params)
+    return Geometry(spec=spec, coords=coords, params=params, velocity=velocity_symbols(dim),
+                    momentum=momentum_symbols(dim), metric=metric, metric_symbols=gsyms,
+                    dmetric=dmetric, blocks=blocks, ignorable=ignorable, domain=domain,
+                    events=events, signature=signature)
+
+
+# -- expression trees -> sympy -------------------------------------------------------------
+def _to_sympy(spec: Spec, e: Expression, env: dict[str, sp.Expr]) -> sp.Expr:
+    def fail(reason, node):
+        return spec.expression_error(e, reason, node.pos)
+
+    def check_number(value, node):
+        if value.is_Rational and max(abs(value.p).bit_length(), value.q.bit_length()) > MAX_NUMBER_BITS:
+            raise fail("number too large (the expression builds an exact number of more than "
+                       f"{MAX_NUMBER_BITS} bits)", node)
+        return value
+
+    def build(node: ex.Node) -> sp.Expr:
+        k = node.kind
+        if k == "num":
+            f: Fraction = node.value
+            return sp.Rational(f.numerator, f.denominator)
+        if k == "name":
+            if node.value == "pi":
+                return sp.pi
+            return env[node.value]
+        if k == "call":
+            args = [build(a) for a in node.args]
+            return _FUNCS[node.value](*args)
+        if k == "neg":
+            return -build(node.args[0])
+        a, b = (build(x) for x in node.args)
+        if k == "add":
+            out = a + b
+        elif k == "sub":
+            out = a - b
+        elif k == "mul":
+            out = a * b
+        elif k == "div":
+            if b == 0:
+                raise fail("division by zero", node.args[1])
+            out = a / b
+        elif k == "pow":
+            if b.is_number:
+                if not b.is_real:
+                    raise fail("exponent is not a real number", node.args[1])
+                if abs(float(b)) > MAX_EXPONENT:
+                    raise fail(f"exponent {float(b):g} is beyond ±{MAX_EXPONENT}",
+                               node.args[1])
+                if a.is_number and a.is_Rational and a != 0:
+                    bits = max(abs(a.p).bit_length(), a.q.bit_length())
+                    if bits * abs(float(b)) > MAX_NUMBER_BITS:
+                        raise fail("number too large", node)
+            if a == 0 and b.is_number and b.is_negative:
+                raise fail("division by zero (zero to a negative power)", node)
+            out = a ** b
+        else:  # pragma: no cover - the parser produces no other kinds
+            raise fail(f"unsupported node {k}", node)
+        if out.is_number:
+            check_number(out, node)
+        return out
+
+    value = build(e.tree)
+    if value.has(sp.zoo, sp.oo, -sp.oo, sp.nan):
+        raise spec.expression_error(e, "expression is infinite or undefined (division by zero?)")
+    if value.has(sp.I):
+        raise spec.expression_error(e, "expression is not real (e.g. sqrt or log of a negative "
+                                       "constant)")
+    return value
+
+
+def _metric_from_line_element(spec: Spec, env: dict, coords) -> sp.ImmutableMatrix:
+    """g_{ij} = 1/2 d^2 E / d(dx^i) d(dx^j) for a line element E homogeneous of degree 2."""
+    e = spec.line_element
+    dim = len(coords)
+    dsyms = tuple(sp.Symbol(f"dd{i}", real=True) for i in range(dim))
+    env = dict(env)
+    env.update({"d" + name: s for name, s in zip(spec.coordinates, dsyms)})
+    value = _to_sympy(spec, e, env)
+    entries = [[None] * dim for _ in range(dim)]
+    for i in range(dim):
+        di = sp.diff(value, dsyms[i])
+        for j in range(i, dim):
+            h = sp.diff(di, dsyms[j]) / 2
+            if h.has(*dsyms):
+                raise spec.expression_error(
+                    e, "line element is not a quadratic form in the differentials (the "
+                       f"coefficient of d{spec.coordinates[i]}*d{spec.coordinates[j]} depends on "
+                       "the differentials)")
+            entries[i][j] = entries[j][i] = h
+    zero = {s: 0 for s in dsyms}
+    rest = [value.subs(zero)] + [sp.diff(value, s).subs(zero) for s in dsyms]
+    for r in rest:
+        if r != 0 and not _numerically_zero(r):
+            raise spec.expression_error(
+                e, "line element is not homogeneous of degree 2 in the differentials (it has "
+                   "terms without a differential, or linear in one); every term must be "
+                   "coefficient*dx*dy")
+    if all(entries[i][j] == 0 for i in range(dim) for j in range(dim)):
+        raise spec.expression_error(e, "line element contains no differentials")
+    return sp.ImmutableMatrix(entries)
+
+
+def _numerically_zero(expr: sp.Expr) -> bool:
+    syms = sorted(expr.free_symbols, key=lambda s: s.name)
+    f = sp.lambdify(syms, expr, modules="numpy")
+    rng = np.random.default_rng(7)
+    with np.errstate(all="ignore"):
+        vals = np.asarray(f(*rng.uniform(0.3, 3.0, size=(len(syms), 16))), dtype=float)
+    vals = vals[np.isfinite(vals)]
+    return vals.size > 0 and bool(np.all(np.abs(vals) < 1e-12))
+
+
+# -- inverse strategy ----------------------------------------------------------------------
+def _blocks_of(metric: sp.ImmutableMatrix) -> list[tuple[int, ...]]:
+    """Connected components of the metric's off-diagonal sparsity pattern, sorted."""
+    n = metric.shape[0]
+    parent = list(range(n))
+
+    def find(i):
+        while parent[i] != i:
+            parent[i] = parent[parent[i]]
+            i = parent[i]
+        return i
+
+    for i in range(n):
+        for j in range(i + 1, n):
+            if metric[i, j] != 0:
+                parent[find(i)] = find(j)
+    groups: dict[int, list[int]] = {}
+    for i in range(n):
+        groups.setdefault(find(i), []).append(i)
+    return sorted(tuple(g) for g in groups.values())
+
+
+DIVISION_WEIGHT = 4   # a division costs about four multiplications (latency, current x86)
+PIVOT_WEIGHT = 4      # compare-and-swap of a pivot search step
+
+
+def numeric_solve_cost(n: int, nrhs: int = 1) -> int:
+    """Operations of Gaussian elimination with partial pivoting: factor plus nrhs solves.
+
+    One reciprocal per pivot (reused by the elimination and back substitution).
+    """
+    factor = sum((n - k - 1) * (1 + 2 * (n - k - 1)) for k in range(n))
+    solve = nrhs * (2 * n * n - n)
+    return factor + solve + n
+
+
+def weighted_numeric_cost(n: int, nrhs: int = 1) -> int:
+    """numeric_solve_cost with divisions and pivoting weighted (the basis of the choice)."""
+    return (numeric_solve_cost(n, nrhs) + (DIVISION_WEIGHT - 1) * n
+            + PIVOT_WEIGHT * n * (n - 1) // 2)
+
+
+def _inverse_blocks(metric: sp.ImmutableMatrix, gsyms: sp.ImmutableMatrix) -> tuple[InverseBlock, ...]:
+    """Choose, per diagonal block of the metric, a closed-form or a numeric inverse.
+
+    Both costs are counted on the metric entries as atoms, for one matrix-vector product
+    (the geodesic right-hand side's need), divisions and pivoting weighted: the closed form
+    is the adjugate over the determinant (only tried up to 4x4: its size grows as n!).
+    """
+    from .printing import count_ops
+    blocks = []
+    for idx in _blocks_of(metric):
+        n = len(idx)
+        numeric = weighted_numeric_cost(n, nrhs=1)
+        sym_inverse, sym_cost = None, None
+        if n <= 4:
+            m = sp.Matrix(n, n, lambda a, b: gsyms[idx[a], idx[b]])
+            det = m.det(method="berkowitz") if n > 1 else m[0, 0]
+            adj = m.adjugate() if n > 1 else sp.Matrix([[1]])
+            repl, reduced = sp.cse([det] + list(adj), order="canonical")
+            sym_cost = sum(count_ops(r) for _, r in repl) + sum(count_ops(r) for r in reduced)
+            # one reciprocal of the determinant, n*n scalings, one matrix-vector product
+            sym_cost += DIVISION_WEIGHT + (n * n if n > 1 else 0) + n * (2 * n - 1)
+            sym_inverse = sp.ImmutableMatrix(n, n, lambda a, b: adj[a, b] / det)
+        if sym_cost is not None and sym_cost <= numeric:
+            blocks.append(InverseBlock(idx, "symbolic", sym_inverse, sym_cost, numeric))
+        else:
+            blocks.append(InverseBlock(idx, "numeric", None, sym_cost, numeric))
+    return tuple(blocks)
+
+
+# -- numerical checks of the metric --------------------------------------------------------
+def _check_numerically(spec: Spec, metric, domain, coords, params) -> tuple[int, int]:
+    """Check the metric at points inside the domain; return (negative, positive) counts."""
+    dim = len(coords)
+    defaults = [v for _, v in spec.parameters]
+    metric_f = sp.lambdify([coords, params], metric, modules="numpy")
+    domain_f = [sp.lambdify([coords, params], d, modules="numpy") for _, d in domain]
+
+    def metric_at(points):
+        return np.stack([np.asarray(metric_f(p, defaults), dtype=float) for p in points]) \
+            if len(points) else np.empty((0, dim, dim))
+
+    def accept(points):
+        ok = np.ones(len(points), dtype=bool)
+        cols = points.T
+        for f in domain_f:
+            val = np.broadcast_to(np.asarray(f(cols, defaults), dtype=float), ok.shape)
+            ok &= np.isfinite(val) & (val > 0)
+        idx = np.flatnonzero(ok)
+        if idx.size:
+            g = metric_at(points[idx])
+            ok[idx] = np.all(np.isfinite(g), axis=(1, 2))
+        return ok
+
+    points = sample_inside(accept, dim, SAMPLE_POINTS)
+    where = "[metric]" if spec.line_element is None else "line_element"
+    table, key = (None, "line_element") if spec.line_element is not None else (None, "metric")
+    if len(points) == 0:
+        raise spec.error("could not find points inside [domain] where the metric is finite; "
+                         "check the domain expressions (each must be > 0 inside the chart) and "
+                         "the metric", table, key)
+    g = metric_at(points)
+    seen = None
+    for p, gp in zip(points, g):
+        scale = np.prod(np.linalg.norm(gp, axis=1))
+        det = abs(np.linalg.det(gp))
+        at = ", ".join(f"{c}={v:.6g}" for c, v in zip(spec.coordinates, p))
+        if scale == 0 or det <= 1e-12 * scale:
+            raise spec.error(f"metric is singular at {at} inside the domain (det g = "
+                             f"{np.linalg.det(gp):.3g}); {where} must be invertible everywhere "
+                             "inside the domain", table, key)
+        eig = np.linalg.eigvalsh(gp)
+        counts = (int(np.sum(eig < 0)), int(np.sum(eig > 0)))
+        if spec.signature is not None:
+            want = (spec.signature.count("-"), spec.signature.count("+"))
+            if counts != want:
+                raise spec.error(
+                    f"metric has {counts[0]} negative and {counts[1]} positive eigenvalues at "
+                    f"{at}, but signature \"{spec.signature}\" asks for {want[0]} and {want[1]}",
+                    None, "signature")
+        if seen is None:
+            seen = counts
+    return seen

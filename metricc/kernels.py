@@ -1,0 +1,474 @@
+"""Stage 3: Geometry -> KernelSet, the intermediate representation.
+
+A :class:`Kernel` is a straight-line program: an ordered list of steps, each either an
+:class:`Assign` of one expression to a fresh symbol or a :class:`Solve` of a small dense linear
+system, followed by the output expressions (row-major over ``output_shape``). Backends print a
+kernel statement by statement; no backend re-derives anything.
+
+Optimisation happens here, once for all backends: constant metric entries are folded, repeated
+reciprocals and square roots of a common base are hoisted into one symbol, bases of integer
+powers are named so a power is a few multiplications of one value, and sympy's common
+subexpression elimination runs in canonical order (deterministic output).
+"""
+from __future__ import annotations
+
+import heapq
+from dataclasses import dataclass, field
+
+import sympy as sp
+
+from .geometry import Geometry, numeric_solve_cost
+from .printing import count_ops
+
+
+@dataclass(frozen=True)
+class Assign:
+    """``target = expr`` (a local double)."""
+    target: sp.Symbol
+    expr: sp.Expr
+
+
+@dataclass(frozen=True)
+class Solve:
+    """Solve A X = B by Gaussian elimination with partial pivoting.
+
+    matrix: n*n expressions, row-major. rhs: one tuple of n expressions per right-hand side.
+    results: one tuple of n fresh symbols per right-hand side (X's columns).
+    """
+    matrix: tuple[sp.Expr, ...]
+    rhs: tuple[tuple[sp.Expr, ...], ...]
+    results: tuple[tuple[sp.Symbol, ...], ...]
+
+    @property
+    def n(self) -> int:
+        return len(self.results[0])
+
+
+@dataclass(frozen=True)
+class Kernel:
+    """One generated function.
+
+    input_name: "x" (coordinates, length dim), "y" ([x^mu, u^mu], 2*dim) or "z"
+        ([x^mu, p_mu], 2*dim). input_symbols[k] stands for element k of that array.
+    outputs: flat row-major expressions over output_shape.
+    ops_before / ops_after: operations before and after optimisation (see count_ops).
+    """
+    name: str
+    doc: str
+    input_name: str
+    input_symbols: tuple[sp.Symbol, ...]
+    output_shape: tuple[int, ...]
+    steps: tuple
+    outputs: tuple[sp.Expr, ...]
+    ops_before: int
+    ops_after: int
+
+    @property
+    def output_size(self) -> int:
+        size = 1
+        for s in self.output_shape:
+            size *= s
+        return size
+
+    def used_symbols(self) -> set[sp.Symbol]:
+        used: set[sp.Symbol] = set()
+        for st in self.steps:
+            if isinstance(st, Assign):
+                used |= st.expr.free_symbols
+            else:
+                for e in st.matrix:
+                    used |= sp.sympify(e).free_symbols
+                for col in st.rhs:
+                    for e in col:
+                        used |= sp.sympify(e).free_symbols
+        for e in self.outputs:
+            used |= sp.sympify(e).free_symbols
+        return used
+
+
+@dataclass(frozen=True)
+class KernelSet:
+    """All kernels of one spec plus the facts the runtime and the emitters need."""
+    name: str
+    summary: str
+    spec_sha256: str
+    coordinates: tuple[str, ...]
+    parameters: tuple[tuple[str, float], ...]
+    param_symbols: tuple[sp.Symbol, ...]
+    kernels: tuple[Kernel, ...]
+    ignorable: tuple[str, ...]
+    domain: tuple[str, ...]
+    events: tuple[str, ...]
+    signature: tuple[int, int]
+    inverse_strategy: str
+    inverse_blocks: tuple[dict, ...] = field(default=())
+
+    @property
+    def dim(self) -> int:
+        return len(self.coordinates)
+
+    def kernel(self, name: str) -> Kernel:
+        for k in self.kernels:
+            if k.name == name:
+                return k
+        raise KeyError(name)
+
+
+def build_kernels(geo: Geometry) -> KernelSet:
+    """Assemble and optimise every kernel of a geometry."""
+    spec = geo.spec
+    dim = geo.dim
+    x, u, p = geo.coords, geo.velocity, geo.momentum
+    gsyms = geo.metric_symbols
+    metric_defs = [(gsyms[i, j], geo.metric[i, j]) for i in range(dim) for j in range(i, dim)]
+
+    kernels = [
+        _metric_kernel(geo, metric_defs),
+        _inverse_kernel(geo, metric_defs),
+        _christoffel_kernel(geo, metric_defs),
+        _geodesic_kernel(geo, metric_defs),
+        _hamilton_kernel(geo, metric_defs),
+        _make("norm", "g_{mu nu} u^mu u^nu", "y", x + u, (), [geo.norm()], metric_defs),
+        _momentum_norm_kernel(geo, metric_defs),
+    ]
+    if geo.ignorable:
+        outs = [sp.Add(*[gsyms[k, j] * u[j] for j in range(dim)]) for k in geo.ignorable]
+        kernels.append(_make("conserved", "p_k = g_{k nu} u^nu for each ignorable coordinate k",
+                             "y", x + u, (len(outs),), outs, metric_defs))
+    if geo.domain:
+        kernels.append(_make("domain", "domain expressions (> 0 inside the chart)", "x", x,
+                             (len(geo.domain),), [e for _, e in geo.domain], []))
+    if geo.events:
+        kernels.append(_make("events", "event expressions (a state stops where one is <= 0)",
+                             "x", x, (len(geo.events),), [e for _, e in geo.events], []))
+    blocks = tuple({"coordinates": [spec.coordinates[i] for i in b.indices],
+                    "strategy": b.strategy, "cost_symbolic": b.cost_symbolic,
+                    "cost_numeric": b.cost_numeric} for b in geo.blocks)
+    return KernelSet(name=spec.name, summary=spec.summary, spec_sha256=spec.sha256,
+                     coordinates=spec.coordinates, parameters=spec.parameters,
+                     param_symbols=geo.params, kernels=tuple(kernels),
+                     ignorable=tuple(spec.coordinates[k] for k in geo.ignorable),
+                     domain=tuple(n for n, _ in geo.domain),
+                     events=tuple(n for n, _ in geo.events), signature=geo.signature,
+                     inverse_strategy=geo.inverse_strategy, inverse_blocks=blocks)
+
+
+# -- the kernels ---------------------------------------------------------------------------
+def _metric_kernel(geo: Geometry, metric_defs) -> Kernel:
+    dim = geo.dim
+    outs = [geo.metric_symbols[i, j] for i in range(dim) for j in range(dim)]
+    return _make("metric", "g_{mu nu}, [mu][nu]", "x", geo.coords, (dim, dim), outs, metric_defs)
+
+
+def _apply_inverse(geo: Geometry, columns: list[list[sp.Expr]], tag: str):
+    """g^{-1} times each column (lists of dim expressions) -> (solves, result columns)."""
+    dim = geo.dim
+    results = [[None] * dim for _ in columns]
+    solves = []
+    for bi, block in enumerate(geo.blocks):
+        idx = block.indices
+        if block.strategy == "symbolic":
+            for c, col in enumerate(columns):
+                for a_local, a in enumerate(idx):
+                    results[c][a] = sp.Add(*[block.inverse[a_local, d_local] * col[d]
+                                             for d_local, d in enumerate(idx)])
+        else:
+            n = len(idx)
+            matrix = tuple(geo.metric_symbols[idx[r], idx[s]] for r in range(n) for s in range(n))
+            live = [c for c, col in enumerate(columns) if any(col[d] != 0 for d in idx)]
+            for c, col in enumerate(columns):
+                if c not in live:
+                    for a in idx:
+                        results[c][a] = sp.S.Zero
+            if not live:
+                continue
+            res_syms = tuple(tuple(sp.Symbol(f"s{tag}{bi}_{c}_{r}", real=True) for r in range(n))
+                             for c in live)
+            solves.append((matrix, tuple(tuple(columns[c][d] for d in idx) for c in live),
+                           res_syms))
+            for c, syms in zip(live, res_syms):
+                for r, a in enumerate(idx):
+                    results[c][a] = syms[r]
+    return solves, results
+
+
+def _inverse_kernel(geo: Geometry, metric_defs) -> Kernel:
+    dim = geo.dim
+    identity = [[sp.S.One if d == c else sp.S.Zero for d in range(dim)] for c in range(dim)]
+    solves, cols = _apply_inverse(geo, identity, "i")
+    outs = [cols[j][i] for i in range(dim) for j in range(dim)]
+    return _make("inverse_metric", "g^{mu nu}, [mu][nu]", "x", geo.coords, (dim, dim), outs,
+                 metric_defs, solves)
+
+
+def _christoffel_kernel(geo: Geometry, metric_defs) -> Kernel:
+    dim = geo.dim
+    pairs = [(b, c) for b in range(dim) for c in range(b, dim)]
+    columns = [[geo.christoffel_first(d, b, c) for d in range(dim)] for b, c in pairs]
+    solves, cols = _apply_inverse(geo, columns, "c")
+    table = {}
+    for (b, c), col in zip(pairs, cols):
+        for a in range(dim):
+            table[a, b, c] = table[a, c, b] = col[a]
+    outs = [table[a, b, c] for a in range(dim) for b in range(dim) for c in range(dim)]
+    return _make("christoffel", "Gamma^a_{bc}, [a][b][c]", "x", geo.coords, (dim, dim, dim),
+                 outs, metric_defs, solves)
+
+
+def _geodesic_kernel(geo: Geometry, metric_defs) -> Kernel:
+    dim = geo.dim
+    w = geo.geodesic_force()
+    solves, cols = _apply_inverse(geo, [[-wd for wd in w]], "g")
+    outs = list(geo.velocity) + list(cols[0])
+    return _make("geodesic_rhs", "d/dlambda [x^mu, u^mu] = [u^mu, -Gamma^mu_{ab} u^a u^b]",
+                 "y", geo.coords + geo.velocity, (2 * dim,), outs, metric_defs, solves)
+
+
+def _hamilton_kernel(geo: Geometry, metric_defs) -> Kernel:
+    dim = geo.dim
+    solves, cols = _apply_inverse(geo, [list(geo.momentum)], "h")
+    pinned = list(metric_defs)
+    # u^mu = g^{mu nu} p_nu, named with the velocity symbols the force is written in.
+    for a in range(dim):
+        if isinstance(cols[0][a], sp.Symbol) and cols[0][a].name.startswith("sh"):
+            pinned.append((geo.velocity[a], cols[0][a]))
+        else:
+            pinned.append((geo.velocity[a], cols[0][a]))
+    outs = list(geo.velocity) + list(geo.hamilton_force())
+    return _make("hamilton_rhs", "d/dlambda [x^mu, p_mu] = [dH/dp_mu, -dH/dx^mu], "
+                 "H = 1/2 g^{ab} p_a p_b", "z", geo.coords + geo.momentum, (2 * dim,), outs,
+                 pinned, solves)
+
+
+def _momentum_norm_kernel(geo: Geometry, metric_defs) -> Kernel:
+    dim = geo.dim
+    solves, cols = _apply_inverse(geo, [list(geo.momentum)], "m")
+    out = sp.Add(*[geo.momentum[a] * cols[0][a] for a in range(dim)])
+    return _make("momentum_norm", "g^{mu nu} p_mu p_nu (= 2H)", "z", geo.coords + geo.momentum,
+                 (), [out], metric_defs, solves)
+
+
+# -- optimisation and scheduling -----------------------------------------------------------
+def _make(name, doc, input_name, input_symbols, shape, outputs, pinned, solves=()) -> Kernel:
+    """Optimise one kernel: fold constants, hoist powers, CSE, schedule, drop dead code."""
+    outputs = [sp.sympify(o) for o in outputs]
+    pinned = [(s, sp.sympify(e)) for s, e in pinned]
+    solves = [(tuple(sp.sympify(m) for m in mat), tuple(tuple(sp.sympify(e) for e in col)
+               for col in rhs), res) for mat, rhs, res in solves]
+
+    # Keep only the definitions the outputs need (transitively).
+    needed = _free(outputs)
+    for mat, rhs, res in solves:
+        needed |= _free(mat) | _free(e for col in rhs for e in col)
+    pin_map = dict(pinned)
+    live_pins = []
+    frontier = set(needed)
+    while frontier:
+        s = frontier.pop()
+        if s in pin_map and s not in live_pins:
+            live_pins.append(s)
+            frontier |= pin_map[s].free_symbols
+    pinned = [(s, e) for s, e in pinned if s in live_pins]
+
+    ops_before = (sum(count_ops(e) for _, e in pinned) + sum(count_ops(o) for o in outputs)
+                  + sum(count_ops(e) for mat, rhs, _ in solves for e in mat)
+                  + sum(count_ops(e) for _, rhs, _ in solves for col in rhs for e in col)
+                  + sum(numeric_solve_cost(len(res[0]), len(res)) for _, _, res in solves))
+
+    # Fold pinned definitions that are constants or bare symbols into their uses.
+    fold = {}
+    for s, e in pinned:
+        e = e.xreplace(fold)
+        if e.is_Number or e.is_Symbol:
+            fold[s] = e
+    pinned = [(s, e.xreplace(fold)) for s, e in pinned if s not in fold]
+    outputs = [o.xreplace(fold) for o in outputs]
+    solves = [(tuple(m.xreplace(fold) for m in mat),
+               tuple(tuple(e.xreplace(fold) for e in col) for col in rhs), res)
+              for mat, rhs, res in solves]
+
+    # One flat list of expressions to optimise together.
+    flat: list[sp.Expr] = [e for _, e in pinned] + outputs
+    for mat, rhs, _ in solves:
+        flat += list(mat) + [e for col in rhs for e in col]
+    hoisted, flat = _hoist_powers(flat)
+    # The hoisted definitions join the same CSE pass, so a named base shares its
+    # subexpressions with every other use.
+    flat = [e for _, e in hoisted] + flat
+    replacements, reduced = sp.cse(flat, symbols=sp.numbered_symbols("t", real=True),
+                                   order="canonical", list=True)
+    hoisted_red = [(s, e) for (s, _), e in zip(hoisted, reduced)]
+    reduced = reduced[len(hoisted):]
+
+    pos = 0
+    pinned_red = []
+    for s, _ in pinned:
+        pinned_red.append((s, reduced[pos]))
+        pos += 1
+    outputs_red = reduced[pos:pos + len(outputs)]
+    pos += len(outputs)
+    solves_red = []
+    for mat, rhs, res in solves:
+        m = tuple(reduced[pos:pos + len(mat)])
+        pos += len(mat)
+        cols = []
+        for col in rhs:
+            cols.append(tuple(reduced[pos:pos + len(col)]))
+            pos += len(col)
+        solves_red.append(Solve(m, tuple(cols), res))
+
+    items: list = ([Assign(s, e) for s, e in replacements]
+                   + [Assign(s, e) for s, e in hoisted_red]
+                   + [Assign(s, e) for s, e in pinned_red] + solves_red)
+    steps = _schedule(items, set(input_symbols))
+    steps, outputs_red = _forward_aliases(steps, outputs_red)
+    steps = _drop_dead(steps, outputs_red)
+    ops_after = sum(count_ops(st.expr) if isinstance(st, Assign) else
+                    numeric_solve_cost(st.n, len(st.results)) + sum(count_ops(e) for e in st.matrix)
+                    + sum(count_ops(e) for col in st.rhs for e in col) for st in steps)
+    ops_after += sum(count_ops(o) for o in outputs_red)
+    return Kernel(name=name, doc=doc, input_name=input_name,
+                  input_symbols=tuple(input_symbols), output_shape=tuple(shape),
+                  steps=tuple(steps), outputs=tuple(outputs_red), ops_before=ops_before,
+                  ops_after=ops_after)
+
+
+def _free(exprs) -> set:
+    out: set = set()
+    for e in exprs:
+        out |= sp.sympify(e).free_symbols
+    return out
+
+
+def _defines(item) -> tuple:
+    return (item.target,) if isinstance(item, Assign) else tuple(s for col in item.results for s in col)
+
+
+def _uses(item) -> set:
+    if isinstance(item, Assign):
+        return item.expr.free_symbols
+    return _free(item.matrix) | _free(e for col in item.rhs for e in col)
+
+
+def _schedule(items: list, inputs: set) -> list:
+    """Topological order of items by data dependence, stable in the given order."""
+    producer = {}
+    for i, item in enumerate(items):
+        for s in _defines(item):
+            producer[s] = i
+    deps = []
+    for i, item in enumerate(items):
+        d = {producer[s] for s in _uses(item) if s in producer}
+        d.discard(i)
+        deps.append(d)
+    users: dict[int, list[int]] = {i: [] for i in range(len(items))}
+    for i, d in enumerate(deps):
+        for j in d:
+            users[j].append(i)
+    remaining = [len(d) for d in deps]
+    ready = [i for i, r in enumerate(remaining) if r == 0]
+    heapq.heapify(ready)
+    order = []
+    while ready:
+        i = heapq.heappop(ready)
+        order.append(items[i])
+        for j in users[i]:
+            remaining[j] -= 1
+            if remaining[j] == 0:
+                heapq.heappush(ready, j)
+    if len(order) != len(items):  # pragma: no cover - would be a bug in the IR builder
+        raise RuntimeError("cyclic dependencies in kernel")
+    return order
+
+
+def _forward_aliases(steps: list, outputs):
+    """Replace ``a = b`` (b a symbol or number) by b in every later use."""
+    alias: dict = {}
+    kept = []
+    for st in steps:
+        if isinstance(st, Assign):
+            e = st.expr.xreplace(alias) if alias else st.expr
+            if e.is_Symbol or e.is_Number:
+                alias[st.target] = e
+                continue
+            kept.append(Assign(st.target, e))
+        else:
+            if alias:
+                st = Solve(tuple(m.xreplace(alias) for m in st.matrix),
+                           tuple(tuple(e.xreplace(alias) for e in col) for col in st.rhs),
+                           st.results)
+            kept.append(st)
+    return kept, [o.xreplace(alias) for o in outputs]
+
+
+def _drop_dead(steps: list, outputs) -> list:
+    live = _free(outputs)
+    kept = []
+    for st in reversed(steps):
+        if any(s in live for s in _defines(st)):
+            kept.append(st)
+            live |= _uses(st)
+    return list(reversed(kept))
+
+
+def _hoist_powers(exprs: list[sp.Expr]) -> tuple[list[tuple[sp.Symbol, sp.Expr]], list[sp.Expr]]:
+    """Name the bases of powers so each power costs a few multiplications of one value.
+
+    - a base raised to half-integer powers in two or more places gets one ``sqrt``;
+    - a base raised to negative powers in two or more places gets one reciprocal;
+    - a compound base of an integer power is named, so ``(a+b)^2`` is ``h*h``.
+    Returns the new definitions (in dependency order) and the rewritten expressions.
+    """
+    neg_uses: dict = {}
+    half_uses: dict = {}
+    for e in exprs:
+        for node in sp.preorder_traversal(e):
+            if node.is_Pow and node.exp.is_Rational and not node.base.is_Number:
+                if node.exp.q == 2:
+                    half_uses[node.base] = half_uses.get(node.base, 0) + 1
+                if node.exp < 0:
+                    neg_uses[node.base] = neg_uses.get(node.base, 0) + 1
+    defs: list[tuple[sp.Symbol, sp.Expr]] = []
+    names: dict = {}
+    counter = iter(range(10 ** 9))
+    memo: dict = {}
+
+    def named(key, make):
+        if key not in names:
+            value = make()
+            sym = sp.Symbol(f"h{next(counter)}", real=True)
+            names[key] = sym
+            defs.append((sym, value))
+        return names[key]
+
+    def rewrite(e):
+        if e in memo:
+            return memo[e]
+        if e.is_Atom or not e.args:
+            out = e
+        elif e.is_Pow and e.exp.is_Rational and not e.base.is_Number:
+            b0, q = e.base, e.exp
+            b = rewrite(b0)
+            if q.q == 2 and half_uses.get(b0, 0) >= 2:
+                root = named(("sqrt", b0), lambda: sp.sqrt(b))
+                if q.p < 0 and neg_uses.get(b0, 0) >= 2:
+                    inv = named(("rsqrt", b0), lambda: 1 / root)
+                    out = inv ** (-q.p)
+                else:
+                    out = root ** q.p
+            elif q.q == 1 and q < 0 and neg_uses.get(b0, 0) >= 2:
+                base = b if b.is_Symbol else named(("base", b0), lambda: b)
+                inv = named(("inv", b0), lambda: 1 / base)
+                out = inv ** (-q.p)
+            elif q.q == 1 and abs(q.p) >= 2 and not b.is_Symbol:
+                base = named(("base", b0), lambda: b)
+                out = base ** q
+            else:
+                out = b ** q
+        else:
+            out = e.func(*[rewrite(a) for a in e.args])
+        memo[e] = out
+        return out
+
+    new = [rewrite(e) for e in exprs]
+    return defs, new

@@ -50,9 +50,28 @@ def cache_root() -> Path:
     return base / "metricc"
 
 
+_FINGERPRINT: list[str] = []
+
+
+def generator_fingerprint() -> str:
+    """sha256 of metricc's own generator code and templates (so a changed generator never
+    serves stale kernels, even without a version bump). Read once per process."""
+    if not _FINGERPRINT:
+        from .resources import template_dir
+        h = hashlib.sha256()
+        here = Path(__file__).resolve().parent
+        for path in sorted(here.glob("*.py")) + sorted(template_dir().glob("*.j2")):
+            h.update(path.name.encode())
+            h.update(path.read_bytes())
+        _FINGERPRINT.append(h.hexdigest())
+    return _FINGERPRINT[0]
+
+
 def spec_key(spec: Spec, options: dict | None = None) -> str:
-    """sha256 over what determines the generated sources: spec content, version, options."""
+    """sha256 over what determines the generated sources: spec content, version, generator
+    code, options."""
     payload = json.dumps({"spec": spec.canonical, "version": __version__,
+                          "generator": generator_fingerprint(),
                           "options": options or {}}, sort_keys=True)
     return hashlib.sha256(payload.encode()).hexdigest()
 

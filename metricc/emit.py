@@ -8,13 +8,13 @@ spec gives the same bytes.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from pathlib import Path
 
 import jinja2
 
 from ._version import __version__
 from .kernels import Assign, Kernel, KernelSet, Solve
 from .printing import Printer
+from .resources import template_dir
 
 INPUT_DOCS = {"x": "coordinates", "y": "state [x^mu, u^mu]", "z": "state [x^mu, p_mu]"}
 
@@ -27,13 +27,6 @@ class Sources:
 
     def __getitem__(self, filename: str) -> str:
         return self.files[filename]
-
-
-def template_dir() -> Path:
-    """The templates folder: inside the installed package, or at the top of a checkout."""
-    here = Path(__file__).resolve().parent
-    installed = here / "templates"
-    return installed if installed.is_dir() else here.parent / "templates"
 
 
 def _environment() -> jinja2.Environment:

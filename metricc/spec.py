@@ -434,24 +434,27 @@ def _locate(text: str, table: str | None, key: str | None) -> tuple[int | None, 
         return None, None
     target = ([table] if table else []) + (key.split(".") if key else [])
     header: list[str] = []
+    prefix_hit = None
     for lineno, line in enumerate(text.splitlines(), 1):
         m = _HEADER.match(line)
         if m and not line.lstrip().startswith("[["):
             header = _split_key(m.group(1))
-            if key is None and header == target:
+            if header == target:
                 return lineno, None
             continue
         m = _ASSIGN.match(line)
         if not m:
             continue
         full = header + _split_key(m.group(1))
-        if full == target or (key is None and full[:len(target)] == target):
+        if full == target:
             col = m.end() + 1
             if line[m.end():m.end() + 1] in ("\"", "'") and line[m.end():m.end() + 3] not in (
                     '"""', "'''"):
                 col += 1
             return lineno, col
-    return None, None
+        if prefix_hit is None and full[:len(target)] == target:
+            prefix_hit = (lineno, None)
+    return prefix_hit or (None, None)
 
 
 def _context_line(text: str, line: int | None, column: int | None) -> str:

@@ -61,11 +61,11 @@ class Node:
 
 
 _TOKEN = re.compile(r"""
-    (?P<ws>\s+)
-  | (?P<num>(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?)
+    (?P<ws>[ \t\r\n]+)
+  | (?P<num>(?:[0-9]+\.?[0-9]*|\.[0-9]+)(?:[eE][+-]?[0-9]+)?)
   | (?P<name>[A-Za-z_][A-Za-z0-9_]*)
   | (?P<op>\*\*|[-+*/^(),])
-""", re.VERBOSE)
+""", re.VERBOSE | re.ASCII)
 
 
 def _tokenize(text: str) -> list[tuple[str, str, int]]:

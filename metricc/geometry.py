@@ -184,6 +184,8 @@ def _to_sympy(spec: Spec, e: Expression, env: dict[str, sp.Expr]) -> sp.Expr:
         if value.is_Rational and max(abs(value.p).bit_length(), value.q.bit_length()) > MAX_NUMBER_BITS:
             raise fail("number too large (the expression builds an exact number of more than "
                        f"{MAX_NUMBER_BITS} bits)", node)
+        if value.is_Rational and value != 0 and not 1e-300 < abs(value) < 1e300:
+            raise fail("constant outside the range of double precision (1e-300 to 1e300)", node)
         return value
 
     def build(node: ex.Node) -> sp.Expr:
@@ -224,6 +226,8 @@ def _to_sympy(spec: Spec, e: Expression, env: dict[str, sp.Expr]) -> sp.Expr:
                         raise fail("number too large", node)
             if a == 0 and b.is_number and b.is_negative:
                 raise fail("division by zero (zero to a negative power)", node)
+            if a.is_number and a.is_negative and b.is_number and not b.is_integer:
+                raise fail("a negative number to a non-integer power is not real", node)
             out = a ** b
         else:  # pragma: no cover - the parser produces no other kinds
             raise fail(f"unsupported node {k}", node)
@@ -234,7 +238,7 @@ def _to_sympy(spec: Spec, e: Expression, env: dict[str, sp.Expr]) -> sp.Expr:
     value = build(e.tree)
     if value.has(sp.zoo, sp.oo, -sp.oo, sp.nan):
         raise spec.expression_error(e, "expression is infinite or undefined (division by zero?)")
-    if value.has(sp.I):
+    if value.has(sp.I) or (value.is_number and value.is_real is False):
         raise spec.expression_error(e, "expression is not real (e.g. sqrt or log of a negative "
                                        "constant)")
     return value

@@ -279,8 +279,8 @@ class _Validator:
     def defines(self, coords, taken: dict) -> tuple[tuple[str, Expression], ...]:
         table = self.table("define")
         names_in_table = list(table)
-        out = []
-        for i, (dname, text) in enumerate(table.items()):
+        # Names first, so a clash is reported as a clash and not as a forward reference.
+        for dname in names_in_table:
             self.check_name(dname, "define", dname)
             if dname in taken:
                 raise self.fail(f"{dname!r} is already a {taken[dname]}", "define", dname)
@@ -288,6 +288,8 @@ class _Validator:
                 if dname in ("d" + other, "p_" + other):
                     raise self.fail(f"{dname!r} reads as the differential or momentum of "
                                     f"coordinate {other!r}; rename it", "define", dname)
+        out = []
+        for i, (dname, text) in enumerate(table.items()):
             e = self.expression("define", dname, text)
             for used, pos in ex.names(e.tree):
                 if used == dname:
@@ -313,7 +315,7 @@ class _Validator:
                 raise self.fail("keys must be coordinate pairs written a.b (e.g. t.phi)",
                                 "metric", first)
             if first not in coords:
-                raise self.unknown_coordinate(first, coords, first)
+                raise self.unknown_coordinate(first, coords, f"{first}.{next(iter(row), '')}")
             for second, text in row.items():
                 key = f"{first}.{second}"
                 if isinstance(text, dict):

@@ -216,6 +216,47 @@ def compiler_command() -> list[str]:
     return shlex.split(cc)
 
 
+_OPENMP_TEST = """#include <omp.h>
+int main(void) { int n = 0;
+#pragma omp parallel reduction(+:n)
+n += 1;
+return n > 0 && omp_get_max_threads() > 0 ? 0 : 1; }
+"""
+
+
+def openmp_flags(cc: list[str]) -> list[str]:
+    """["-fopenmp"] if the compiler builds and runs an OpenMP program, else [].
+
+    Detected once per compiler and remembered in the cache folder.
+    """
+    root = cache_root()
+    key = hashlib.sha256(json.dumps(cc).encode()).hexdigest()[:16]
+    memo = root / f"openmp-{key}.json"
+    try:
+        return json.loads(memo.read_text())["flags"]
+    except (OSError, ValueError, KeyError):
+        pass
+    flags: list[str] = []
+    with tempfile.TemporaryDirectory() as tmp:
+        src = Path(tmp) / "omp.c"
+        src.write_text(_OPENMP_TEST)
+        exe = Path(tmp) / "omp"
+        try:
+            proc = subprocess.run(cc + ["-fopenmp", str(src), "-o", str(exe)],
+                                  capture_output=True, timeout=120)
+            if proc.returncode == 0 and subprocess.run([str(exe)], capture_output=True,
+                                                       timeout=60).returncode == 0:
+                flags = ["-fopenmp"]
+        except (OSError, subprocess.TimeoutExpired):
+            flags = []
+    try:
+        root.mkdir(parents=True, exist_ok=True)
+        atomic_write(memo, json.dumps({"compiler": cc, "flags": flags}))
+    except OSError:
+        pass
+    return flags
+
+
 def _link_flags() -> list[str]:
     if sys.platform == "darwin":
         return ["-bundle", "-undefined", "dynamic_lookup"]
@@ -257,7 +298,8 @@ def ensure_binary(entry: CacheEntry) -> CacheEntry:
         include = sysconfig.get_paths()["include"]
         probe_name = "_metricc_probe"
         source_for_key = extension_source(entry, probe_name)
-        argv_for_key = cc + list(COMPILE_FLAGS) + _link_flags()
+        omp = openmp_flags(cc)
+        argv_for_key = cc + list(COMPILE_FLAGS) + omp + _link_flags()
         bkey = hashlib.sha256(json.dumps([source_for_key, argv_for_key, ext, __version__])
                               .encode()).hexdigest()
         module_name = f"_metricc_{bkey[:16]}"
@@ -267,7 +309,7 @@ def ensure_binary(entry: CacheEntry) -> CacheEntry:
             c_file = Path(tmp) / f"{module_name}.c"
             c_file.write_text(source, encoding="utf-8")
             out = Path(tmp) / filename
-            argv = cc + list(COMPILE_FLAGS) + ["-I", include] + _link_flags() + \
+            argv = cc + list(COMPILE_FLAGS) + omp + ["-I", include] + _link_flags() + \
                 [str(c_file), "-o", str(out), "-lm"]
             t0 = time.perf_counter()
             try:
@@ -282,7 +324,7 @@ def ensure_binary(entry: CacheEntry) -> CacheEntry:
         m = dict(entry.manifest)
         m["binary"] = {"module": module_name, "file": filename, "key": bkey,
                        "compile_seconds": round(time.perf_counter() - t0, 3),
-                       "compiler": " ".join(cc)}
+                       "compiler": " ".join(cc), "openmp": bool(omp)}
         atomic_write(entry.directory / MANIFEST, json.dumps(m, indent=1, sort_keys=True))
         return CacheEntry(entry.directory, m)
 

@@ -12,6 +12,8 @@ from dataclasses import dataclass
 import jinja2
 
 from ._version import __version__
+from . import emit_integrator
+from .integrate import DOMAIN, DONE, EVENT_BASE, MAX_STEPS, NOT_FINITE, STEP_UNDERFLOW
 from .kernels import Assign, Kernel, KernelSet, Solve
 from .printing import Printer
 from .resources import template_dir
@@ -90,6 +92,8 @@ def cdef_text(ks: KernelSet) -> str:
     for _, single, batch in c_prototypes(ks, "restrict"):
         lines += [single + ";", batch + ";"]
     lines.append(f"void {ks.name}_default_params(double *params);")
+    lines.append(emit_integrator.options_struct(ks))
+    lines.append(emit_integrator.integrate_prototype(ks, "restrict") + ";")
     return "\n".join(lines) + "\n"
 
 
@@ -121,6 +125,18 @@ def c_header(ks: KernelSet, env=None) -> str:
     constants = [f"#define {P}_DIM {ks.dim}", f"#define {P}_NPARAMS {len(ks.parameters)}"]
     for i, (pname, default) in enumerate(ks.parameters):
         constants.append(f"#define {P}_PARAM_{pname} {i} /* default {default!r} */")
+    constants += [
+        "", "/* Integrator: methods, state forms and the status of each integrated state. */",
+        f"#define {P}_METHOD_DP5 0", f"#define {P}_METHOD_DOP853 1",
+        f"#define {P}_FORM_GEODESIC 0", f"#define {P}_FORM_HAMILTON 1",
+        f"#define {P}_STATUS_DONE {DONE}", f"#define {P}_STATUS_DOMAIN {DOMAIN}",
+        f"#define {P}_STATUS_MAX_STEPS {MAX_STEPS}",
+        f"#define {P}_STATUS_STEP_UNDERFLOW {STEP_UNDERFLOW}",
+        f"#define {P}_STATUS_NOT_FINITE {NOT_FINITE}",
+        f"#define {P}_STATUS_EVENT(k) ({EVENT_BASE} + (k)) /* event k of the spec fired */",
+        f"#define {P}_NEVENTS {len(ks.events)}"]
+    for i, ev in enumerate(ks.events):
+        constants.append(f"#define {P}_EVENT_{ev} {i}")
     params_doc = ", ".join(p for p, _ in ks.parameters) or "(none: pass NULL)"
     layout_doc = [
         f"/* Kernels of the metric \"{ks.name}\" in coordinates "
@@ -145,6 +161,19 @@ def c_header(ks: KernelSet, env=None) -> str:
     decls.append({"doc": "/* Writes the spec's default parameter values to params["
                          f"{P}_NPARAMS]. */",
                   "prototype": f"void {ks.name}_default_params(double *{P}_RESTRICT params)"})
+    decls.append({"doc": "/* Options of " + ks.name + "_integrate. */\n"
+                         + emit_integrator.options_struct(ks) + "\n"
+                         "/* Integrates n states y0[n][" + str(2 * ks.dim) + "] from lambda = 0 to lam_end "
+                         "(negative: backward), each with its own\n"
+                         " * step size and stop (see the status macros). params as for the batch "
+                         "kernels. samples[n_samples]\n"
+                         " * (sorted along the direction of integration, or NULL) gives "
+                         "samples_out[n][n_samples][" + str(2 * ks.dim) + "]\n"
+                         " * (NaN where not reached; may be NULL when n_samples is 0). Writes "
+                         "y_out[n][" + str(2 * ks.dim) + "], lam_out[n],\n"
+                         " * status[n] and steps[n] (accepted steps). Parallel over states with "
+                         "OpenMP when compiled with it. */",
+                  "prototype": emit_integrator.integrate_prototype(ks, f"{P}_RESTRICT")})
     return env.get_template("c_header.h.j2").render(
         banner=_c_banner(ks), guard=f"METRICC_{P}_H", prefix_upper=P, constants=constants,
         layout_doc=layout_doc, declarations=decls)
@@ -281,9 +310,11 @@ def c_source(ks: KernelSet, env=None, preamble: str = "") -> str:
     defaults = [f"params[{i}] = {_c_double(v)}; /* {p} */" for i, (p, v) in enumerate(ks.parameters)]
     functions.append({"prototype": f"void {ks.name}_default_params(double *{P}_RESTRICT params)",
                       "body": defaults or ["(void)params;"]})
+    integrator = env.get_template("c_integrator.c.j2").render(
+        **emit_integrator.integrator_context(ks))
     return env.get_template("c_source.c.j2").render(
         banner=_c_banner(ks), preamble=preamble, helpers=helpers, functions=functions,
-        prefix_upper=P)
+        prefix_upper=P, integrator=integrator)
 
 
 def _c_double(v: float) -> str:

@@ -14,6 +14,7 @@ import numpy as np
 
 from . import build
 from .errors import BuildError, MetriccWarning
+from .integrate import IntegrationResult
 from .spec import Spec
 
 BACKENDS = ("auto", "c", "numpy")
@@ -146,6 +147,154 @@ class MetricKernels:
         if not self.event_names:
             raise ValueError(f"spec {self.name!r} defines no [events]")
         return self._call("events", x, params)
+
+    # -- integration -----------------------------------------------------------------------
+    def integrate(self, y0, lam_end, params=None, rtol=1e-10, atol=1e-12, max_steps=100000,
+                  events=None, samples=None, form="geodesic", method=None, threads=None,
+                  progress=None) -> IntegrationResult:
+        """Integrate a batch of geodesics from lambda = 0 to ``lam_end``; see docs/integrator.md.
+
+        y0: (N, 2*dim) states [x, u] (form="geodesic") or [x, p] (form="hamilton"); any
+        leading axes work and are kept in the result. Returns an IntegrationResult with y
+        (N, 2*dim), lam (N,), status (N,) str, steps (N,), samples (N, S, 2*dim) or None, drift
+        (N,).
+        """
+        from .integrate import DOMAIN, EVENT_BASE, IntegrationResult, integrate_numpy, \
+            status_names
+        from .tableaus import DEFAULT_METHOD, METHODS
+        if form not in ("geodesic", "hamilton"):
+            raise ValueError(f"form must be 'geodesic' or 'hamilton', got {form!r}")
+        method = DEFAULT_METHOD if method is None else method
+        if method not in METHODS:
+            raise ValueError(f"method must be one of {', '.join(METHODS)}, got {method!r}")
+        norm_kernel = "norm" if form == "geodesic" else "momentum_norm"
+        y0 = self._check_input(norm_kernel, y0)
+        lead = y0.shape[:-1]
+        n = 2 * self.dim
+        flat = np.ascontiguousarray(y0.reshape(-1, n))
+        N = flat.shape[0]
+        lam_end = float(lam_end)
+        if not np.isfinite(lam_end):
+            raise ValueError(f"lam_end must be finite, got {lam_end}")
+        rtol, atol = float(rtol), float(atol)
+        if not (rtol > 0 and atol >= 0 and np.isfinite(rtol) and np.isfinite(atol)):
+            raise ValueError(f"need rtol > 0 and atol >= 0, got rtol={rtol}, atol={atol}")
+        if int(max_steps) != max_steps or max_steps < 0:
+            raise ValueError(f"max_steps must be a non-negative integer, got {max_steps!r}")
+        if threads is not None and (int(threads) != threads or threads < 1):
+            raise ValueError(f"threads must be a positive integer, got {threads!r}")
+        if progress is not None and not callable(progress):
+            raise TypeError("progress must be a callable progress(done, total)")
+        if events is None:
+            active = list(range(len(self.event_names)))
+        else:
+            if isinstance(events, str):
+                events = [events]
+            unknown = [e for e in events if e not in self.event_names]
+            if unknown:
+                known = ", ".join(self.event_names) or "none"
+                raise ValueError(f"{self.name}: unknown event {unknown[0]!r} (events: {known})")
+            active = sorted({self.event_names.index(e) for e in events})
+        given = self._params(params, lead)
+        for key, v in given.items():
+            if np.broadcast_shapes(v.shape, lead) != tuple(lead):
+                raise ValueError(f"{self.name}: parameter {key!r} of shape {v.shape} would add "
+                                 f"batch axes to the states of shape {tuple(lead)}")
+        values = [np.broadcast_to(given.get(p, np.float64(d)), lead).reshape(-1).astype(np.float64)
+                  for p, d in self.parameters.items()]
+        if samples is not None:
+            samples = np.asarray(samples, dtype=np.float64)
+            if samples.ndim != 1 or not np.all(np.isfinite(samples)):
+                raise ValueError("samples must be a 1-D array of finite affine parameters")
+        direction = 1.0 if lam_end >= 0 else -1.0
+        order = None
+        if samples is not None:
+            order = np.argsort(direction * samples, kind="stable")
+            sorted_samples = np.ascontiguousarray(samples[order])
+        else:
+            sorted_samples = None
+
+        if self._c is not None:
+            y_end, lam, codes, steps, samp = self._integrate_c(
+                flat, lam_end, values, given, rtol, atol, int(max_steps), active, sorted_samples,
+                form, method, threads, progress)
+        else:
+            fn = getattr(self._np, "geodesic_rhs" if form == "geodesic" else "hamilton_rhs")
+            codes_list = []
+            if active:
+                codes_list += [EVENT_BASE + k for k in active]
+            if self.domain_names:
+                codes_list += [DOMAIN] * len(self.domain_names)
+            ev_fn = getattr(self._np, "events", None)
+            dom_fn = getattr(self._np, "domain", None)
+
+            def stop(x, p):
+                parts = []
+                if active:
+                    parts.append(ev_fn(x, p)[:, active])
+                if self.domain_names:
+                    parts.append(dom_fn(x, p))
+                return np.concatenate(parts, axis=1)
+
+            y_end, lam, codes, steps, samp = integrate_numpy(
+                fn, stop if codes_list else None, flat, lam_end, tuple(values), rtol=rtol,
+                atol=atol, max_steps=int(max_steps), method=method, samples=sorted_samples,
+                stop_codes=np.array(codes_list, dtype=np.int32), progress=progress)
+        if samp is not None:
+            unsorted = np.empty_like(samp)
+            unsorted[:, order] = samp
+            samp = unsorted.reshape(lead + (len(samples), n))
+        pdict = {p: v for p, v in zip(self.parameters, values)}
+        with np.errstate(all="ignore"):
+            start = self._call(norm_kernel, flat, pdict)
+            end = self._call(norm_kernel, y_end, pdict)
+        drift = np.abs(end - start)
+        return IntegrationResult(
+            y=y_end.reshape(lead + (n,)), lam=lam.reshape(lead),
+            status=status_names(codes, self.event_names).reshape(lead),
+            steps=steps.astype(np.int64).reshape(lead), samples=samp,
+            drift=drift.reshape(lead), status_code=codes.reshape(lead))
+
+    def _integrate_c(self, flat, lam_end, values, given, rtol, atol, max_steps, active, samples,
+                     form, method, threads, progress):
+        ffi, lib = self._c.ffi, self._c.lib
+        N, n = flat.shape
+        opt = ffi.new(f"{self.name}_integrator_options *")
+        opt.rtol, opt.atol, opt.max_steps = rtol, atol, max_steps
+        opt.method = 0 if method == "dp5" else 1
+        opt.form = 0 if form == "geodesic" else 1
+        opt.event_mask = sum(1 << k for k in active)
+        opt.threads = int(threads or 0)
+        npar = len(values)
+        if npar == 0 or all(v.ndim == 0 for v in given.values()):
+            pvec = np.array([float(v[0]) if v.size else 0.0 for v in values] or [0.0])
+            stride = 0
+        else:
+            pvec = np.ascontiguousarray(np.stack(values, axis=-1))
+            stride = npar
+        y_out = np.empty((N, n))
+        lam = np.empty(N)
+        codes = np.empty(N, dtype=np.intc)
+        steps = np.empty(N, dtype=np.dtype(f"i{ffi.sizeof('long')}"))
+        S = 0 if samples is None else len(samples)
+        samp = np.full((N, S, n), np.nan) if S else None
+        fn = getattr(lib, f"{self.name}_integrate")
+        chunk = N if progress is None else max(64, -(-N // 100))
+        s_ptr = ffi.from_buffer("double[]", samples) if S else ffi.NULL
+        for start in range(0, N, max(chunk, 1)):
+            stop = min(N, start + chunk)
+            m = stop - start
+            pv = pvec[start:stop] if stride else pvec
+            fn(m, ffi.from_buffer("double[]", flat[start:stop]), lam_end,
+               ffi.from_buffer("double[]", pv), stride, opt, S, s_ptr,
+               ffi.from_buffer("double[]", y_out[start:stop]),
+               ffi.from_buffer("double[]", lam[start:stop]),
+               ffi.from_buffer("int[]", codes[start:stop]),
+               ffi.from_buffer("long[]", steps[start:stop]),
+               ffi.from_buffer("double[]", samp[start:stop]) if S else ffi.NULL)
+            if progress is not None:
+                progress(stop, N)
+        return y_out, lam, codes.astype(np.int32), steps, samp
 
     # -- plumbing ------------------------------------------------------------------------
     def _check_input(self, kernel: str, arr) -> np.ndarray:

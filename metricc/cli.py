@@ -1,4 +1,4 @@
-"""Command line: ``metricc build SPEC... --out DIR [--target c,numpy]``.
+"""Command line: ``metricc build SPEC... --out DIR``, ``metricc integrate SPEC ...``.
 
 User mistakes (a bad spec, an unwritable folder) print one line and exit with status 1; only
 bugs in metricc itself show a traceback.
@@ -38,6 +38,31 @@ def _parser() -> argparse.ArgumentParser:
                    help="comma-separated targets: c (NAME.h + NAME.c), numpy (NAME_numpy.py); "
                         "default c,numpy")
     b.add_argument("--quiet", "-q", action="store_true", help="print nothing on success")
+
+    g = sub.add_parser("integrate", help="integrate a batch of geodesics from a file of states")
+    g.add_argument("spec", metavar="SPEC", help="spec file (.toml)")
+    g.add_argument("--input", "-i", required=True, metavar="FILE",
+                   help="initial states: .npy, or text (.txt/.csv, one state per row), shape "
+                        "(N, 2*dim)")
+    g.add_argument("--lam-end", type=float, required=True, metavar="L",
+                   help="affine parameter to integrate to (negative: backward)")
+    g.add_argument("--output", "-o", required=True, metavar="FILE.npz",
+                   help="results: y, lam, status, steps, drift (and samples)")
+    g.add_argument("--param", action="append", default=[], metavar="NAME=VALUE",
+                   help="override a parameter (repeatable)")
+    g.add_argument("--form", choices=("geodesic", "hamilton"), default="geodesic")
+    g.add_argument("--method", choices=("dop853", "dp5"), default=None)
+    g.add_argument("--rtol", type=float, default=1e-10)
+    g.add_argument("--atol", type=float, default=1e-12)
+    g.add_argument("--max-steps", type=int, default=100000)
+    g.add_argument("--events", default=None, metavar="LIST",
+                   help="comma-separated event names to use (default: all; '' for none)")
+    g.add_argument("--samples", type=int, default=0, metavar="S",
+                   help="also store S evenly spaced samples from 0 to lam_end")
+    g.add_argument("--threads", type=int, default=None)
+    g.add_argument("--backend", choices=("auto", "c", "numpy"), default="auto")
+    g.add_argument("--progress", action=argparse.BooleanOptionalAction, default=None,
+                   help="progress bar on stderr (default: when stderr is a terminal)")
     return p
 
 
@@ -102,11 +127,97 @@ def _summary(r, out: Path, written: list[str]) -> None:
           + (f"; unchanged: {', '.join(unchanged)}" if unchanged else ""))
 
 
+class ProgressBar:
+    """A one-line progress bar on a stream (stderr), redrawn at most ten times a second."""
+
+    def __init__(self, stream, label: str, width: int = 30):
+        self.stream, self.label, self.width = stream, label, width
+        self.start = time.perf_counter()
+        self.last = 0.0
+
+    def __call__(self, done: int, total: int) -> None:
+        now = time.perf_counter()
+        if done < total and now - self.last < 0.1:
+            return
+        self.last = now
+        frac = done / total if total else 1.0
+        filled = int(round(frac * self.width))
+        elapsed = now - self.start
+        rate = done / elapsed if elapsed > 0 else 0.0
+        self.stream.write(f"\r{self.label} [{'#' * filled}{'.' * (self.width - filled)}] "
+                          f"{100 * frac:5.1f}% {done}/{total} ({rate:,.0f}/s, {elapsed:.1f} s)")
+        if done >= total:
+            self.stream.write("\n")
+        self.stream.flush()
+
+
+def _read_states(path: str):
+    import numpy as np
+    p = Path(path)
+    try:
+        if p.suffix == ".npy":
+            arr = np.load(p, allow_pickle=False)
+        else:
+            arr = np.loadtxt(p, delimiter="," if p.suffix == ".csv" else None, ndmin=2)
+    except (OSError, ValueError) as exc:
+        raise BuildError(f"cannot read states from {path}: {exc}") from None
+    return np.asarray(arr, dtype=np.float64)
+
+
+def cmd_integrate(args) -> int:
+    import numpy as np
+    from . import load
+    params = {}
+    for item in args.param:
+        name, sep, value = item.partition("=")
+        try:
+            params[name.strip()] = float(value)
+        except ValueError:
+            sep = ""
+        if not sep:
+            raise BuildError(f"--param expects NAME=VALUE, got {item!r}")
+    k = load(args.spec, backend=args.backend)
+    y0 = _read_states(args.input)
+    events = None if args.events is None else [e for e in args.events.split(",") if e]
+    samples = np.linspace(0.0, args.lam_end, args.samples) if args.samples > 0 else None
+    show = sys.stderr.isatty() if args.progress is None else args.progress
+    bar = ProgressBar(sys.stderr, f"{k.name}") if show else None
+    try:
+        res = k.integrate(y0, args.lam_end, params=params or None, rtol=args.rtol,
+                          atol=args.atol, max_steps=args.max_steps, events=events,
+                          samples=samples, form=args.form, method=args.method,
+                          threads=args.threads, progress=bar)
+    except ValueError as exc:
+        raise BuildError(str(exc)) from None
+    out = Path(args.output)
+    arrays = {"y": res.y, "lam": res.lam, "status": res.status, "steps": res.steps,
+              "drift": res.drift}
+    if res.samples is not None:
+        arrays["samples"] = res.samples
+        arrays["sample_lam"] = samples
+    import io
+    buf = io.BytesIO()
+    np.savez(buf, **arrays)
+    from .build import atomic_write
+    try:
+        atomic_write(out, buf.getvalue())
+    except OSError as exc:
+        raise BuildError(f"cannot write {out}: {exc.strerror or exc}") from None
+    names, counts = np.unique(res.status, return_counts=True)
+    print(f"{k.name}: {len(res.lam)} states, " + ", ".join(f"{c} {n}" for n, c in
+                                                          zip(names, counts))
+          + f"; {int(res.steps.sum())} steps; max drift {np.nanmax(res.drift) if res.drift.size else 0:.2e}"
+          + f" -> {out}")
+    return 0
+
+
 def main(argv=None) -> int:
     args = _parser().parse_args(argv)
     try:
         if args.command == "build":
             return cmd_build(args)
+        if args.command == "integrate":
+            return cmd_integrate(args)
     except (SpecError, BuildError) as exc:
         print(str(exc).splitlines()[0] if isinstance(exc, SpecError) else f"metricc: error: {exc}",
               file=sys.stderr)

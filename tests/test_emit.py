@@ -169,3 +169,60 @@ def test_generated_identifiers_never_use_spec_names(tmp_path):
     g_ = k.metric(x, params={"params": 2.0})
     np.testing.assert_allclose(g_, [[1 + (2.0 * 0.3) ** 2, 0, 0], [0, 2.0 + 0.49, 0.2],
                                     [0, 0.2, 1 + 0.09]], rtol=1e-15)
+
+
+INTEGRATOR_DRIVER = r"""
+#include <stdio.h>
+#include <math.h>
+#include "schwarzschild.h"
+
+int main(void)
+{
+    /* photons from r = 1000 M in the equatorial plane, impact parameters 5.0 and 5.4
+       (the capture threshold is 3 sqrt(3) M = 5.196 M) */
+    const double r0 = 1000.0, f = 1.0 - 2.0 / r0, b[2] = {5.0, 5.4};
+    double y0[16], y[16], lam[2], p[1] = {1.0}, samples[3] = {0.0, 500.0, 1000.0}, s[2 * 3 * 8];
+    int status[2], i;
+    long steps[2];
+    schwarzschild_integrator_options opt;
+    for (i = 0; i < 2; ++i) {
+        double *q = y0 + 8 * i;
+        q[0] = 0.0; q[1] = r0; q[2] = 1.5707963267948966; q[3] = 0.0;
+        q[4] = 1.0 / f; q[6] = 0.0; q[7] = b[i] / (r0 * r0);
+        q[5] = -sqrt(f * (f * q[4] * q[4] - r0 * r0 * q[7] * q[7]));
+    }
+    opt.rtol = 1e-10; opt.atol = 1e-12; opt.max_steps = 100000;
+    opt.method = SCHWARZSCHILD_METHOD_DOP853; opt.form = SCHWARZSCHILD_FORM_GEODESIC;
+    opt.event_mask = 1UL << SCHWARZSCHILD_EVENT_horizon; opt.threads = 1;
+    schwarzschild_integrate(2, y0, 3000.0, p, 0, &opt, 3, samples, y, lam, status, steps, s);
+    for (i = 0; i < 2; ++i)
+        printf("%d %ld %.17g %.17g %.17g\n", status[i], steps[i], lam[i], y[8 * i + 1], s[(3 * i + 2) * 8 + 1]);
+    return 0;
+}
+"""
+
+
+@needs_cc
+def test_standalone_c_integrator_matches_python(generated, tmp_path):
+    for fname, text in generated["schwarzschild"].sources.files.items():
+        (tmp_path / fname).write_text(text)
+    (tmp_path / "orbit.c").write_text(INTEGRATOR_DRIVER)
+    subprocess.run([CC, *STRICT, "orbit.c", "schwarzschild.c", "-o", "orbit", "-lm"],
+                   cwd=tmp_path, check=True, capture_output=True, timeout=120)
+    run = subprocess.run([str(tmp_path / "orbit")], capture_output=True, text=True, check=True,
+                         timeout=60)
+    rows = [line.split() for line in run.stdout.splitlines()]
+    # photon 1 (b < 3 sqrt 3 M) is captured, photon 2 escapes (MTW 1973, sec. 25.6)
+    assert [int(r[0]) for r in rows] == [16, 0]
+    k = metricc.load(SPECS / "schwarzschild.toml")
+    r0, f = 1000.0, 1 - 2 / 1000.0
+    y0 = np.zeros((2, 8))
+    y0[:, 1], y0[:, 2], y0[:, 4] = r0, np.pi / 2, 1 / f
+    y0[:, 7] = np.array([5.0, 5.4]) / r0**2
+    y0[:, 5] = -np.sqrt(f * (f * y0[:, 4] ** 2 - r0**2 * y0[:, 7] ** 2))
+    res = k.integrate(y0, 3000.0, samples=[0.0, 500.0, 1000.0], threads=1)
+    assert list(res.status) == ["horizon", "done"]
+    np.testing.assert_array_equal(res.steps, [int(r[1]) for r in rows])
+    np.testing.assert_allclose(res.lam, [float(r[2]) for r in rows], rtol=1e-12)
+    np.testing.assert_allclose(res.y[:, 1], [float(r[3]) for r in rows], rtol=1e-12)
+    np.testing.assert_allclose(res.samples[:, 2, 1], [float(r[4]) for r in rows], rtol=1e-12)

@@ -14,7 +14,8 @@ from pathlib import Path
 from ._version import __version__
 from .errors import BuildError, SpecError
 
-TARGETS = ("c", "numpy")
+TARGETS = ("c", "numpy", "cffi")
+DEFAULT_TARGETS = ("c", "numpy")
 
 
 def _parse_targets(text: str) -> tuple[str, ...]:
@@ -34,9 +35,15 @@ def _parser() -> argparse.ArgumentParser:
     b = sub.add_parser("build", help="generate kernel sources for one or more specs")
     b.add_argument("specs", nargs="+", metavar="SPEC", help="spec files (.toml)")
     b.add_argument("--out", "-o", required=True, metavar="DIR", help="output folder")
-    b.add_argument("--target", type=_parse_targets, default=TARGETS, metavar="LIST",
-                   help="comma-separated targets: c (NAME.h + NAME.c), numpy (NAME_numpy.py); "
-                        "default c,numpy")
+    b.add_argument("--target", type=_parse_targets, default=DEFAULT_TARGETS, metavar="LIST",
+                   help="comma-separated targets: c (NAME.h + NAME.c), numpy (NAME_numpy.py), "
+                        "cffi (NAME_cffi_build.py + the C pair); default c,numpy")
+    b.add_argument("--depfile", metavar="FILE",
+                   help="also write a Make-format dependency file (outputs depend on the spec "
+                        "and on metricc itself), for Make, Ninja and CMake")
+    b.add_argument("--check", action="store_true",
+                   help="write nothing; exit 1 naming the files in DIR that are missing or "
+                        "differ from what the specs generate now")
     b.add_argument("--quiet", "-q", action="store_true", help="print nothing on success")
 
     g = sub.add_parser("integrate", help="integrate a batch of geodesics from a file of states")
@@ -93,6 +100,22 @@ def cmd_build(args) -> int:
         raise SpecError(f"several specs are named {', '.join(sorted(dup))!r}; their files "
                         "would overwrite each other", path=args.specs[names.index(dup.pop())],
                         key="name")
+    if args.check:
+        stale = []
+        for r in results:
+            for filename, text in sorted(r.sources.files.items()):
+                try:
+                    same = (out / filename).read_bytes() == text.encode("utf-8")
+                except OSError:
+                    same = False
+                if not same:
+                    stale.append(str(out / filename))
+        for path in stale:
+            print(f"{path}: stale (regenerate with metricc build)", file=sys.stderr)
+        if not stale and not args.quiet:
+            print(f"metricc: {sum(len(r.sources.files) for r in results)} generated files "
+                  f"in {out} are up to date")
+        return 1 if stale else 0
     try:
         out.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
@@ -107,7 +130,28 @@ def cmd_build(args) -> int:
                 raise BuildError(f"cannot write {out / filename}: {exc.strerror or exc}") from None
         if not args.quiet:
             _summary(r, out, written)
+    if args.depfile:
+        try:
+            write_if_changed(Path(args.depfile), depfile_text(results, out))
+        except OSError as exc:
+            raise BuildError(f"cannot write {args.depfile}: {exc.strerror or exc}") from None
     return 0
+
+
+def _make_escape(path: str) -> str:
+    return path.replace("\\", "/").replace(" ", "\\ ").replace("#", "\\#").replace("$", "$$")
+
+
+def depfile_text(results, out: Path) -> str:
+    """Make-format rules: every generated file depends on its spec and on metricc itself
+    (its version file, so an upgrade regenerates)."""
+    from . import _version
+    version_file = str(Path(_version.__file__).resolve())
+    lines = []
+    for r in results:
+        targets = " ".join(_make_escape(str(out / f)) for f in sorted(r.sources.files))
+        lines.append(f"{targets}: {_make_escape(r.spec.path)} {_make_escape(version_file)}")
+    return "\n".join(lines) + "\n"
 
 
 def _summary(r, out: Path, written: list[str]) -> None:

@@ -51,9 +51,24 @@ def emit(ks: KernelSet, targets=("c", "numpy")) -> Sources:
         header = c_header(ks, env)
         files[f"{ks.name}.h"] = header
         files[f"{ks.name}.c"] = c_source(ks, env, preamble=f'#include "{ks.name}.h"')
+    if "cffi" in targets:
+        if "c" not in targets:
+            files[f"{ks.name}.h"] = c_header(ks, env)
+            files[f"{ks.name}.c"] = c_source(ks, env, preamble=f'#include "{ks.name}.h"')
+        files[f"{ks.name}_cffi_build.py"] = cffi_build_script(ks, env)
     if "numpy" in targets:
         files[f"{ks.name}_numpy.py"] = numpy_module(ks, env)
     return Sources(ks.name, files)
+
+
+def cffi_build_script(ks: KernelSet, env=None) -> str:
+    """A cffi build script (``cffi_modules=["<name>_cffi_build.py:ffibuilder"]``) that
+    compiles <name>.c into the extension ``_<name>_kernels``; no metricc needed to build or
+    use it."""
+    env = env or _environment()
+    banner = "\n".join("# " + line for line in banner_lines(ks))
+    return env.get_template("cffi_build.py.j2").render(
+        banner=banner, name=ks.name, module=f"_{ks.name}_kernels", cdef=cdef_text(ks))
 
 
 def banner_lines(ks: KernelSet) -> list[str]:
@@ -86,12 +101,18 @@ def c_prototypes(ks: KernelSet, restrict: str) -> list[tuple[str, str, str]]:
     return out
 
 
+def gsl_prototype(ks: KernelSet, form: str) -> str:
+    return (f"int {ks.name}_gsl_{form}_rhs(double t, const double y[], double dydt[], "
+            "void *params)")
+
+
 def cdef_text(ks: KernelSet) -> str:
     """The declarations for cffi's cdef (same functions as the header, plain C)."""
     lines = []
     for _, single, batch in c_prototypes(ks, "restrict"):
         lines += [single + ";", batch + ";"]
     lines.append(f"void {ks.name}_default_params(double *params);")
+    lines += [gsl_prototype(ks, f) + ";" for f in ("geodesic", "hamilton")]
     lines.append(emit_integrator.options_struct(ks))
     lines.append(emit_integrator.integrate_prototype(ks, "restrict") + ";")
     return "\n".join(lines) + "\n"
@@ -161,6 +182,12 @@ def c_header(ks: KernelSet, env=None) -> str:
     decls.append({"doc": "/* Writes the spec's default parameter values to params["
                          f"{P}_NPARAMS]. */",
                   "prototype": f"void {ks.name}_default_params(double *{P}_RESTRICT params)"})
+    for form in ("geodesic", "hamilton"):
+        decls.append({"doc": f"/* {form}_rhs with the GNU Scientific Library's ODE signature "
+                             "(gsl_odeiv2_system.function): params points to\n"
+                             f" * the parameter vector double[{P}_NPARAMS]; t is unused; "
+                             "returns 0 (GSL_SUCCESS). */",
+                      "prototype": gsl_prototype(ks, form)})
     decls.append({"doc": "/* Options of " + ks.name + "_integrate. */\n"
                          + emit_integrator.options_struct(ks) + "\n"
                          "/* Integrates n states y0[n][" + str(2 * ks.dim) + "] from lambda = 0 to lam_end "
@@ -307,6 +334,11 @@ def c_source(ks: KernelSet, env=None, preamble: str = "") -> str:
         body += ["for (i = 0; i < n; ++i)",
                  f"    {ks.name}_{name}({k.input_name} + i * {n_in}, {pexpr}, out + i * {n_out});"]
         functions.append({"prototype": batch, "body": body})
+    for form in ("geodesic", "hamilton"):
+        functions.append({"prototype": gsl_prototype(ks, form),
+                          "body": ["(void)t;",
+                                   f"{ks.name}_{form}_rhs(y, (const double *)params, dydt);",
+                                   "return 0;"]})
     defaults = [f"params[{i}] = {_c_double(v)}; /* {p} */" for i, (p, v) in enumerate(ks.parameters)]
     functions.append({"prototype": f"void {ks.name}_default_params(double *{P}_RESTRICT params)",
                       "body": defaults or ["(void)params;"]})

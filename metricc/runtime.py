@@ -148,6 +148,25 @@ class MetricKernels:
             raise ValueError(f"spec {self.name!r} defines no [events]")
         return self._call("events", x, params)
 
+    def ivp_rhs(self, params=None, form: str = "geodesic"):
+        """``fun(t, y)`` for scipy.integrate.solve_ivp (also with ``vectorized=True``).
+
+        y is a state (2*dim,) or, vectorised, (2*dim, k) columns; t is unused (the geodesic
+        equation does not depend on the affine parameter). form: "geodesic" or "hamilton".
+        """
+        if form not in ("geodesic", "hamilton"):
+            raise ValueError(f"form must be 'geodesic' or 'hamilton', got {form!r}")
+        kernel = "geodesic_rhs" if form == "geodesic" else "hamilton_rhs"
+        self._params(params, ())
+
+        def fun(t, y):
+            y = np.asarray(y, dtype=np.float64)
+            if y.ndim == 1:
+                return self._call(kernel, y, params)
+            return self._call(kernel, y.T, params).T
+
+        return fun
+
     # -- integration -----------------------------------------------------------------------
     def integrate(self, y0, lam_end, params=None, rtol=1e-10, atol=1e-12, max_steps=100000,
                   events=None, samples=None, form="geodesic", method=None, threads=None,

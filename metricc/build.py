@@ -349,7 +349,8 @@ def load_extension(entry: CacheEntry):
 
 def load_numpy_module(entry: CacheEntry):
     """Import the entry's generated NumPy module (once per process)."""
-    name = f"_metricc_np_{entry.manifest['spec_sha256'][:16]}_{entry.directory.name[:8]}"
+    where = hashlib.sha256(str(entry.directory.resolve()).encode()).hexdigest()[:12]
+    name = f"_metricc_np_{entry.manifest['spec_sha256'][:16]}_{where}"
     if name in sys.modules:
         return sys.modules[name]
     path = entry.path(f"{entry.manifest['name']}_numpy.py")

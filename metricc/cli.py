@@ -46,6 +46,23 @@ def _parser() -> argparse.ArgumentParser:
                         "differ from what the specs generate now")
     b.add_argument("--quiet", "-q", action="store_true", help="print nothing on success")
 
+    sh = sub.add_parser("show", help="print the metric and its Christoffel symbols as text "
+                        "or LaTeX")
+    sh.add_argument("spec", metavar="SPEC")
+    sh.add_argument("--format", choices=("text", "latex"), default="text")
+    sh.add_argument("--parts", default="metric,christoffel", metavar="LIST",
+                    help="comma-separated: metric, inverse_metric, christoffel, conserved "
+                         "(default metric,christoffel; 'all' for every part)")
+
+    v = sub.add_parser("verify", help="self-check a spec's kernels at random points inside "
+                       "its domain; exit 1 on any failure")
+    v.add_argument("specs", nargs="+", metavar="SPEC")
+    v.add_argument("--dir", metavar="DIR", default=None,
+                   help="check the generated files in DIR (as written by metricc build) "
+                        "instead of freshly generated ones")
+    v.add_argument("--points", type=int, default=24, help="sample points (default 24)")
+    v.add_argument("--seed", type=int, default=1)
+
     g = sub.add_parser("integrate", help="integrate a batch of geodesics from a file of states")
     g.add_argument("spec", metavar="SPEC", help="spec file (.toml)")
     g.add_argument("--input", "-i", required=True, metavar="FILE",
@@ -255,6 +272,64 @@ def cmd_integrate(args) -> int:
     return 0
 
 
+SHOW_PARTS = ("metric", "inverse_metric", "christoffel", "conserved")
+
+
+def cmd_show(args) -> int:
+    from .geometry import derive
+    from .show import render
+    from .spec import load_spec
+    parts = SHOW_PARTS if args.parts.strip() == "all" else tuple(
+        p.strip() for p in args.parts.split(",") if p.strip())
+    bad = [p for p in parts if p not in SHOW_PARTS]
+    if bad or not parts:
+        raise BuildError(f"unknown part {', '.join(bad) or args.parts!r}; choose from "
+                         f"{', '.join(SHOW_PARTS)} or all")
+    geo = derive(load_spec(args.spec))
+    sys.stdout.write(render(geo, list(parts), args.format))
+    return 0
+
+
+def cmd_verify(args) -> int:
+    import shutil
+    import warnings
+    from .errors import MetriccWarning
+    from .runtime import open_generated, open_spec
+    from .spec import load_spec
+    from .verify import format_table, run_checks
+    failed = 0
+    for path in args.specs:
+        spec = load_spec(path)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", MetriccWarning)
+            backends = []
+            if args.dir:
+                backends.append(open_generated(spec, args.dir, "numpy"))
+                try:
+                    backends.insert(0, open_generated(spec, args.dir, "c"))
+                except BuildError as exc:
+                    print(f"metricc: note: C backend not checked ({str(exc).splitlines()[0]})",
+                          file=sys.stderr)
+            else:
+                backends.append(open_spec(spec, "numpy"))
+                c = open_spec(spec, "auto")
+                if c.backend == "c":
+                    backends.insert(0, c)
+        main_k = backends[0]
+        other = backends[1] if len(backends) > 1 else None
+        want = None
+        if spec.signature is not None:
+            want = (spec.signature.count("-"), spec.signature.count("+"))
+        checks = run_checks(main_k, other, n=args.points, seed=args.seed,
+                            expected_signature=want)
+        print(format_table(spec.name, "+".join(k.backend for k in backends), checks))
+        failed += sum(not c.ok for c in checks)
+        if args.dir:
+            for k in backends:
+                shutil.rmtree(k.cache_dir, ignore_errors=True)
+    return 1 if failed else 0
+
+
 def main(argv=None) -> int:
     args = _parser().parse_args(argv)
     try:
@@ -262,6 +337,10 @@ def main(argv=None) -> int:
             return cmd_build(args)
         if args.command == "integrate":
             return cmd_integrate(args)
+        if args.command == "show":
+            return cmd_show(args)
+        if args.command == "verify":
+            return cmd_verify(args)
     except (SpecError, BuildError) as exc:
         print(str(exc).splitlines()[0] if isinstance(exc, SpecError) else f"metricc: error: {exc}",
               file=sys.stderr)

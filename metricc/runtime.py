@@ -400,3 +400,35 @@ def open_spec(spec: Spec, backend: str = "auto") -> MetricKernels:
             warnings.warn(f"metricc: C backend unavailable ({first}); using the NumPy backend",
                           MetriccWarning, stacklevel=3)
     return MetricKernels(entry, "c" if c_module is not None else "numpy", c_module, np_module)
+
+
+def open_generated(spec: Spec, directory, backend: str) -> MetricKernels:
+    """Kernels from previously generated files in ``directory`` (NAME.h/.c, NAME_numpy.py)
+    rather than from the cache: for checking committed outputs (``metricc verify --dir``).
+
+    The files are copied into a fresh cache folder, so they are compiled and loaded exactly
+    as they are, without being regenerated.
+    """
+    import json
+    import shutil
+    import tempfile
+    from pathlib import Path
+    reference = build.ensure_sources(spec)
+    root = build.cache_root()
+    tmp = Path(tempfile.mkdtemp(dir=root, prefix=".verify-"))
+    name = spec.name
+    wanted = {"c": [f"{name}.h", f"{name}.c"], "numpy": [f"{name}_numpy.py"]}[backend]
+    for f in reference.manifest["files"]:
+        src = Path(directory) / f if f in wanted else reference.path(f)
+        if not src.is_file():
+            raise BuildError(f"{Path(directory) / f}: no such generated file")
+        shutil.copyfile(src, tmp / f)
+    manifest = dict(reference.manifest, binary=None)
+    build.atomic_write(tmp / build.MANIFEST, json.dumps(manifest, indent=1, sort_keys=True))
+    entry = build.CacheEntry(tmp, manifest)
+    np_module = build.load_numpy_module(entry)
+    c_module = None
+    if backend == "c":
+        entry = build.ensure_binary(entry)
+        c_module = build.load_extension(entry)
+    return MetricKernels(entry, backend, c_module, np_module)

@@ -1,0 +1,170 @@
+"""Readable and LaTeX forms of a spec's geometry (``metricc show``).
+
+Expressions are printed in the spec's own names (coordinates and parameters; helpers are
+expanded), in the spec's expression syntax for text (``^`` for powers) or as LaTeX. Light
+rational simplification (``cancel``/``factor``) is applied per component, with a size guard;
+sympy's ``simplify`` is never called.
+"""
+from __future__ import annotations
+
+import sympy as sp
+
+from .geometry import Geometry
+
+SIMPLIFY_MAX_OPS = 150   # components larger than this are printed as derived
+
+
+def _names(geo: Geometry) -> dict:
+    spec = geo.spec
+    out = {c: sp.Symbol(n, real=True) for c, n in zip(geo.coords, spec.coordinates)}
+    out.update({q: sp.Symbol(n, real=True) for q, (n, _) in zip(geo.params, spec.parameters)})
+    return out
+
+
+def _tidy(e: sp.Expr) -> sp.Expr:
+    if sp.count_ops(e) > SIMPLIFY_MAX_OPS:
+        return e
+    if any(p.exp.is_Rational and p.exp.q != 1 for p in e.atoms(sp.Pow)):
+        return e  # radicals make cancel/factor slow and rarely help
+    try:
+        return sp.factor(sp.cancel(e))
+    except (sp.PolynomialError, ValueError, TypeError):  # pragma: no cover - defensive
+        return e
+
+
+def components(geo: Geometry, what: str) -> list[tuple[str, tuple, sp.Expr]]:
+    """(kind, index names, expression in spec names) for the non-zero components.
+
+    what: "metric", "inverse_metric", "christoffel" (second kind where the inverse is in
+    closed form, else first kind Gamma_{d bc}), "conserved".
+    """
+    names = _names(geo)
+    spec, dim = geo.spec, geo.dim
+    cn = spec.coordinates
+    out = []
+    if what == "metric":
+        for i in range(dim):
+            for j in range(i, dim):
+                if geo.metric[i, j] != 0:
+                    out.append(("g", (cn[i], cn[j]), _tidy(geo.metric[i, j].xreplace(names))))
+        return out
+    inverse = _inverse(geo)
+    if what == "inverse_metric":
+        if inverse is None:
+            return []
+        for i in range(dim):
+            for j in range(i, dim):
+                if inverse[i, j] != 0:
+                    out.append(("ginv", (cn[i], cn[j]), _tidy(inverse[i, j].xreplace(names))))
+        return out
+    if what == "christoffel":
+        for a in range(dim):
+            for b in range(dim):
+                for c in range(b, dim):
+                    if inverse is None:
+                        e = geo.christoffel_first(a, b, c)
+                        kind = "Gamma_first"
+                    else:
+                        e = sp.Add(*[inverse[a, d] * geo.christoffel_first(d, b, c)
+                                     for d in range(dim) if inverse[a, d] != 0])
+                        kind = "Gamma"
+                    e = _tidy(e.xreplace(names))
+                    if e != 0:
+                        out.append((kind, (cn[a], cn[b], cn[c]), e))
+        return out
+    if what == "conserved":
+        for k in geo.ignorable:
+            e = sp.Add(*[geo.metric[k, j] * sp.Symbol(f"d{cn[j]}", real=True)
+                         for j in range(dim) if geo.metric[k, j] != 0])
+            out.append(("p", (cn[k],), _tidy(e.xreplace(names))))
+        return out
+    raise ValueError(f"unknown component set {what!r}")
+
+
+def _inverse(geo: Geometry):
+    """The inverse metric in coordinates if every block has a closed form, else None."""
+    if any(b.strategy != "symbolic" for b in geo.blocks):
+        return None
+    dim = geo.dim
+    inv = sp.zeros(dim, dim)
+    subs = {geo.metric_symbols[i, j]: geo.metric[i, j] for i in range(dim) for j in range(dim)}
+    for b in geo.blocks:
+        for ia, a in enumerate(b.indices):
+            for id_, d in enumerate(b.indices):
+                inv[a, d] = b.inverse[ia, id_].xreplace(subs)
+    return inv
+
+
+def _text(e: sp.Expr) -> str:
+    return sp.sstr(e).replace("**", "^")
+
+
+_TITLES = {"metric": "metric g_{mu nu} (non-zero components)",
+           "inverse_metric": "inverse metric g^{mu nu} (non-zero components)",
+           "christoffel": "Christoffel symbols (non-zero, b <= c)",
+           "conserved": "conserved momenta of ignorable coordinates"}
+
+
+def render(geo: Geometry, parts: list[str], fmt: str = "text") -> str:
+    """The requested parts as text or as a LaTeX ``align*`` block."""
+    lines = []
+    spec = geo.spec
+    if fmt == "latex":
+        lines.append(f"% metricc show: {spec.name} ({', '.join(spec.coordinates)})")
+    else:
+        lines.append(f"{spec.name}: {spec.summary}")
+        lines.append(f"coordinates: {', '.join(spec.coordinates)}; parameters: "
+                     f"{', '.join(n for n, _ in spec.parameters) or 'none'}")
+    for part in parts:
+        comps = components(geo, part)
+        title = _TITLES[part]
+        if part == "inverse_metric" and _inverse(geo) is None:
+            title += ": solved numerically at run time (dense block), not shown"
+        if part == "christoffel" and comps and comps[0][0] == "Gamma_first":
+            title = ("Christoffel symbols of the first kind Gamma_{d bc} (the inverse metric is "
+                     "solved numerically at run time)")
+        if fmt == "latex":
+            lines.append(f"% {title}")
+            lines.append("\\begin{align*}")
+            body = []
+            for kind, idx, e in comps:
+                body.append(f"  {_latex_lhs(kind, idx)} &= {sp.latex(e)}")
+            lines.append(" \\\\\n".join(body) if body else "  &\\text{(none)}")
+            lines.append("\\end{align*}")
+        else:
+            lines.append("")
+            lines.append(title + ":")
+            for kind, idx, e in comps:
+                lines.append(f"  {_text_lhs(kind, idx)} = {_text(e)}")
+            if not comps:
+                lines.append("  (none)")
+    return "\n".join(lines) + "\n"
+
+
+def _text_lhs(kind: str, idx: tuple) -> str:
+    if kind == "g":
+        return f"g_{{{idx[0]} {idx[1]}}}"
+    if kind == "ginv":
+        return f"g^{{{idx[0]} {idx[1]}}}"
+    if kind == "Gamma":
+        return f"Gamma^{idx[0]}_{{{idx[1]} {idx[2]}}}"
+    if kind == "Gamma_first":
+        return f"Gamma_{{{idx[0]} {idx[1]} {idx[2]}}}"
+    return f"p_{idx[0]}"
+
+
+def _latex_name(n: str) -> str:
+    return sp.latex(sp.Symbol(n))
+
+
+def _latex_lhs(kind: str, idx: tuple) -> str:
+    L = [_latex_name(i) for i in idx]
+    if kind == "g":
+        return f"g_{{{L[0]} {L[1]}}}"
+    if kind == "ginv":
+        return f"g^{{{L[0]} {L[1]}}}"
+    if kind == "Gamma":
+        return f"\\Gamma^{{{L[0]}}}_{{{L[1]} {L[2]}}}"
+    if kind == "Gamma_first":
+        return f"\\Gamma_{{{L[0]} {L[1]} {L[2]}}}"
+    return f"p_{{{L[0]}}}"

@@ -21,12 +21,14 @@ __all__ = ["load", "loads", "SpecError", "BuildError", "MetriccWarning", "Metric
            "Spec", "load_spec", "parse_spec", "__version__"]
 
 
-def load(path: str | Path, backend: str = "auto") -> MetricKernels:
+def load(path: str | Path, backend: str = "auto", kernels=None) -> MetricKernels:
     """Kernels of the spec file at ``path``. backend: "c", "numpy" or "auto" (C if a
-    compiler works, else NumPy with one warning). Raises SpecError for a bad spec."""
-    return open_spec(load_spec(path), backend)
+    compiler works, else NumPy with one warning). kernels: optional groups to build beyond
+    the spec's own ``kernels`` key ("curvature", "jacobian"). Raises SpecError for a bad
+    spec."""
+    return open_spec(load_spec(path), backend, kernels)
 
 
-def loads(text: str, backend: str = "auto", path: str = "<string>") -> MetricKernels:
+def loads(text: str, backend: str = "auto", path: str = "<string>", kernels=None) -> MetricKernels:
     """Kernels of spec text (TOML); ``path`` only names the text in error messages."""
-    return open_spec(parse_spec(text, path), backend)
+    return open_spec(parse_spec(text, path), backend, kernels)

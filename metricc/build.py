@@ -160,7 +160,7 @@ def ensure_sources(spec: Spec, options: dict | None = None) -> CacheEntry:
         if entry is not None:
             return entry
         from .pipeline import generate  # imports sympy: only on a miss
-        result = generate(spec)
+        result = generate(spec, extra_kernels=tuple((options or {}).get("kernels", ())))
         tmp = Path(tempfile.mkdtemp(dir=root, prefix=".build-"))
         try:
             for name, text in result.sources.files.items():
@@ -199,6 +199,8 @@ def manifest_of(result) -> dict:
         "ignorable": list(ks.ignorable),
         "domain": list(ks.domain),
         "events": list(ks.events),
+        "invariants": list(ks.invariants),
+        "groups": list(ks.groups),
         "signature": list(ks.signature),
         "inverse_strategy": ks.inverse_strategy,
         "inverse_blocks": list(ks.inverse_blocks),

@@ -161,13 +161,20 @@ def _make_escape(path: str) -> str:
 
 def depfile_text(results, out: Path) -> str:
     """Make-format rules: every generated file depends on its spec and on metricc itself
-    (its version file, so an upgrade regenerates)."""
+    (its version file, so an upgrade regenerates). Each prerequisite also gets an empty rule
+    (as ``cc -MP`` writes), so a moved or deleted prerequisite never stops make."""
     from . import _version
-    version_file = str(Path(_version.__file__).resolve())
+    version_file = _make_escape(str(Path(_version.__file__).resolve()))
     lines = []
+    prereqs = []
     for r in results:
         targets = " ".join(_make_escape(str(out / f)) for f in sorted(r.sources.files))
-        lines.append(f"{targets}: {_make_escape(r.spec.path)} {_make_escape(version_file)}")
+        spec_path = _make_escape(r.spec.path)
+        lines.append(f"{targets}: {spec_path} {version_file}")
+        prereqs.append(spec_path)
+    lines.append("")
+    for p in dict.fromkeys(prereqs + [version_file]):
+        lines.append(f"{p}:")
     return "\n".join(lines) + "\n"
 
 

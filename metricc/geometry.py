@@ -92,6 +92,8 @@ class Geometry:
     domain: tuple[tuple[str, sp.Expr], ...]
     events: tuple[tuple[str, sp.Expr], ...]
     signature: tuple[int, int]
+    invariants: tuple[tuple[str, sp.Expr], ...] = ()
+    norm_symbol: sp.Symbol = sp.Symbol("nrm", real=True)
 
     @property
     def dim(self) -> int:
@@ -102,6 +104,10 @@ class Geometry:
         """"symbolic", "numeric" or "mixed" over the metric's diagonal blocks."""
         kinds = {b.strategy for b in self.blocks}
         return kinds.pop() if len(kinds) == 1 else "mixed"
+
+    def second_derivative(self, i: int, j: int, c: int, d: int) -> sp.Expr:
+        """d_c d_d g_{ij}."""
+        return sp.diff(self.dmetric[c][i, j], self.coords[d])
 
     def christoffel_first(self, d: int, b: int, c: int) -> sp.Expr:
         """Gamma_{d bc} = 1/2 (d_b g_dc + d_c g_db - d_d g_bc)."""
@@ -169,10 +175,19 @@ def derive(spec: Spec) -> Geometry:
                                                                  real=True))
     blocks = _inverse_blocks(metric, gsyms)
     signature = _check_numerically(spec, metric, domain, coords, params)
-    return Geometry(spec=spec, coords=coords, params=params, velocity=velocity_symbols(dim),
-                    momentum=momentum_symbols(dim), metric=metric, metric_symbols=gsyms,
+    velocity, momentum = velocity_symbols(dim), momentum_symbols(dim)
+    norm_symbol = sp.Symbol("nrm", real=True)
+    state_env = dict(env)
+    for name, v, pm in zip(spec.coordinates, velocity, momentum):
+        state_env["d" + name] = v
+        state_env["p_" + name] = pm
+    state_env["norm"] = norm_symbol
+    invariants = tuple((name, _to_sympy(spec, e, state_env)) for name, e in spec.invariants)
+    return Geometry(spec=spec, coords=coords, params=params, velocity=velocity,
+                    momentum=momentum, metric=metric, metric_symbols=gsyms,
                     dmetric=dmetric, blocks=blocks, ignorable=ignorable, domain=domain,
-                    events=events, signature=signature)
+                    events=events, signature=signature, invariants=invariants,
+                    norm_symbol=norm_symbol)
 
 
 # -- expression trees -> sympy -------------------------------------------------------------

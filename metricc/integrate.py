@@ -10,7 +10,7 @@ Shapes: N states of size n = 2*dim; S samples; J stop functions (events then dom
 """
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Callable
 
 import numpy as np
@@ -32,7 +32,10 @@ class IntegrationResult:
     y: (N, 2*dim) states where each integration stopped. lam: (N,) affine parameter reached.
     status: (N,) str array ("done", an event name, "domain", "max_steps", "step_underflow",
     "not_finite"). steps: (N,) accepted steps. samples: (N, S, 2*dim) or None. drift: (N,)
-    |g(u,u)_end - g(u,u)_start| (Hamiltonian form: g^{mu nu} p_mu p_nu).
+    |g(u,u)_end - g(u,u)_start| (Hamiltonian form: g^{mu nu} p_mu p_nu). invariant_drift:
+    dict name -> (N,) |I_end - I_start| for the spec's [invariants]. status_code: (N,) the
+    integer statuses (0 done, 1 domain, 2 max_steps, 3 step_underflow, 4 not_finite,
+    16 + k event k).
     """
     y: np.ndarray
     lam: np.ndarray
@@ -41,6 +44,7 @@ class IntegrationResult:
     samples: np.ndarray | None
     drift: np.ndarray
     status_code: np.ndarray
+    invariant_drift: dict = field(default_factory=dict)
 
 
 def status_names(codes: np.ndarray, event_names) -> np.ndarray:

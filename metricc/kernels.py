@@ -102,6 +102,8 @@ class KernelSet:
     signature: tuple[int, int]
     inverse_strategy: str
     inverse_blocks: tuple[dict, ...] = field(default=())
+    invariants: tuple[str, ...] = ()
+    groups: tuple[str, ...] = ()
 
     @property
     def dim(self) -> int:
@@ -114,8 +116,12 @@ class KernelSet:
         raise KeyError(name)
 
 
-def build_kernels(geo: Geometry) -> KernelSet:
-    """Assemble and optimise every kernel of a geometry."""
+def build_kernels(geo: Geometry, extra: tuple[str, ...] = ()) -> KernelSet:
+    """Assemble and optimise every kernel of a geometry.
+
+    extra: optional kernel groups to add ("curvature", "jacobian"), on top of those the spec
+    asks for in its ``kernels`` key.
+    """
     spec = geo.spec
     dim = geo.dim
     x, u, p = geo.coords, geo.velocity, geo.momentum
@@ -135,6 +141,13 @@ def build_kernels(geo: Geometry) -> KernelSet:
         outs = [sp.Add(*[gsyms[k, j] * u[j] for j in range(dim)]) for k in geo.ignorable]
         kernels.append(_make("conserved", "p_k = g_{k nu} u^nu for each ignorable coordinate k",
                              "y", x + u, (len(outs),), outs, metric_defs))
+    if geo.invariants:
+        kernels += _invariant_kernels(geo, metric_defs)
+    groups = set(spec.kernels) | set(extra)
+    if "curvature" in groups:
+        kernels += _curvature_kernels(geo, metric_defs)
+    if "jacobian" in groups:
+        kernels += [_geodesic_jacobian(geo, metric_defs), _hamilton_jacobian(geo, metric_defs)]
     if geo.domain:
         kernels.append(_make("domain", "domain expressions (> 0 inside the chart)", "x", x,
                              (len(geo.domain),), [e for _, e in geo.domain], []))
@@ -145,6 +158,8 @@ def build_kernels(geo: Geometry) -> KernelSet:
                     "strategy": b.strategy, "cost_symbolic": b.cost_symbolic,
                     "cost_numeric": b.cost_numeric} for b in geo.blocks)
     return KernelSet(name=spec.name, summary=spec.summary, spec_sha256=spec.sha256,
+                     invariants=tuple(n for n, _ in geo.invariants),
+                     groups=tuple(sorted(groups)),
                      coordinates=spec.coordinates, parameters=spec.parameters,
                      param_symbols=geo.params, kernels=tuple(kernels),
                      ignorable=tuple(spec.coordinates[k] for k in geo.ignorable),
@@ -230,10 +245,7 @@ def _hamilton_kernel(geo: Geometry, metric_defs) -> Kernel:
     pinned = list(metric_defs)
     # u^mu = g^{mu nu} p_nu, named with the velocity symbols the force is written in.
     for a in range(dim):
-        if isinstance(cols[0][a], sp.Symbol) and cols[0][a].name.startswith("sh"):
-            pinned.append((geo.velocity[a], cols[0][a]))
-        else:
-            pinned.append((geo.velocity[a], cols[0][a]))
+        pinned.append((geo.velocity[a], cols[0][a]))
     outs = list(geo.velocity) + list(geo.hamilton_force())
     return _make("hamilton_rhs", "d/dlambda [x^mu, p_mu] = [dH/dp_mu, -dH/dx^mu], "
                  "H = 1/2 g^{ab} p_a p_b", "z", geo.coords + geo.momentum, (2 * dim,), outs,
@@ -246,6 +258,207 @@ def _momentum_norm_kernel(geo: Geometry, metric_defs) -> Kernel:
     out = sp.Add(*[geo.momentum[a] * cols[0][a] for a in range(dim)])
     return _make("momentum_norm", "g^{mu nu} p_mu p_nu (= 2H)", "z", geo.coords + geo.momentum,
                  (), [out], metric_defs, solves)
+
+
+def _pin(columns: list[list[sp.Expr]], prefix: str):
+    """Name every compound entry of ``columns`` with a symbol: (definitions, atom columns)."""
+    defs, out = [], []
+    for c, col in enumerate(columns):
+        new = []
+        for r, e in enumerate(col):
+            e = sp.sympify(e)
+            if e.is_Atom:
+                new.append(e)
+            else:
+                s = sp.Symbol(f"{prefix}{c}_{r}", real=True)
+                defs.append((s, e))
+                new.append(s)
+        out.append(new)
+    return defs, out
+
+
+def _inverse_atoms(geo: Geometry, tag: str):
+    """g^{ab} as atoms: (definitions, solves, dim x dim nested list [a][b])."""
+    dim = geo.dim
+    identity = [[sp.S.One if d == c else sp.S.Zero for d in range(dim)] for c in range(dim)]
+    solves, cols = _apply_inverse(geo, identity, tag)
+    defs, cols = _pin(cols, f"gi{tag}")
+    inv = [[cols[b][a] for b in range(dim)] for a in range(dim)]
+    return defs, solves, inv
+
+
+def _invariant_kernels(geo: Geometry, metric_defs) -> list[Kernel]:
+    dim = geo.dim
+    x, u, p, gs = geo.coords, geo.velocity, geo.momentum, geo.metric_symbols
+    outs = [e for _, e in geo.invariants]
+    # [x, u] form: p_mu = g_{mu nu} u^nu, norm = g(u, u)
+    pins = list(metric_defs) + [(p[a], sp.Add(*[gs[a, b] * u[b] for b in range(dim)]))
+                                for a in range(dim)]
+    pins.append((geo.norm_symbol, geo.norm()))
+    k_y = _make("invariants", "the spec's [invariants] for states [x, u]", "y", x + u,
+                (len(outs),), outs, pins)
+    # [x, p] form: u^mu = g^{mu nu} p_nu, norm = g^{mu nu} p_mu p_nu
+    solves, cols = _apply_inverse(geo, [list(p)], "v")
+    pins = list(metric_defs) + [(u[a], cols[0][a]) for a in range(dim)]
+    pins.append((geo.norm_symbol, sp.Add(*[p[a] * u[a] for a in range(dim)])))
+    k_z = _make("invariants_hamilton", "the spec's [invariants] for states [x, p]", "z", x + p,
+                (len(outs),), outs, pins, solves)
+    return [k_y, k_z]
+
+
+def _curvature_kernels(geo: Geometry, metric_defs) -> list[Kernel]:
+    """Riemann R^a_{bcd}, Ricci R_{bd} = R^a_{bad}, R = g^{bd} R_{bd} and R_{abcd} R^{abcd}.
+
+    R_{abcd} = 1/2 (g_ad,bc + g_bc,ad - g_ac,bd - g_bd,ac)
+               + Gamma_{f bc} Gamma^f_{ad} - Gamma_{f bd} Gamma^f_{ac}
+    (the coordinate form of R^a_{bcd} = d_c Gamma^a_{db} - d_d Gamma^a_{cb}
+    + Gamma^a_{ce} Gamma^e_{db} - Gamma^a_{de} Gamma^e_{cb}, the sign convention of
+    Misner, Thorne & Wheeler 1973), with g^{-1} as atoms so nothing is differentiated twice
+    through an inverse.
+    """
+    dim = geo.dim
+    x = geo.coords
+    inv_defs, solves, inv = _inverse_atoms(geo, "r")
+    pins = list(metric_defs) + inv_defs
+    second: dict = {}
+
+    def dd(i, j, c, d):
+        key = (min(i, j), max(i, j), min(c, d), max(c, d))
+        if key not in second:
+            second[key] = geo.second_derivative(key[0], key[1], key[2], key[3])
+        return second[key]
+
+    g1 = {}
+    for d in range(dim):
+        for b in range(dim):
+            for c in range(b, dim):
+                e = geo.christoffel_first(d, b, c)
+                if e != 0:
+                    s = sp.Symbol(f"cf{d}_{b}_{c}", real=True)
+                    pins.append((s, e))
+                    g1[d, b, c] = g1[d, c, b] = s
+                else:
+                    g1[d, b, c] = g1[d, c, b] = sp.S.Zero
+    g2 = {}
+    for f in range(dim):
+        for a in range(dim):
+            for d in range(a, dim):
+                e = sp.Add(*[inv[f][q] * g1[q, a, d] for q in range(dim)])
+                if e != 0:
+                    s = sp.Symbol(f"cs{f}_{a}_{d}", real=True)
+                    pins.append((s, e))
+                    g2[f, a, d] = g2[f, d, a] = s
+                else:
+                    g2[f, a, d] = g2[f, d, a] = sp.S.Zero
+    pairs = [(a, b) for a in range(dim) for b in range(a + 1, dim)]
+    low = {}
+    for i, (a, b) in enumerate(pairs):
+        for j, (c, d) in enumerate(pairs):
+            if j < i:
+                low[i, j] = low[j, i]
+                continue
+            e = (dd(a, d, b, c) + dd(b, c, a, d) - dd(a, c, b, d) - dd(b, d, a, c)) / 2
+            e += sp.Add(*[g1[f, b, c] * g2[f, a, d] - g1[f, b, d] * g2[f, a, c]
+                          for f in range(dim)])
+            if e != 0:
+                s = sp.Symbol(f"rl{i}_{j}", real=True)
+                pins.append((s, e))
+                low[i, j] = s
+            else:
+                low[i, j] = sp.S.Zero
+    index = {pr: i for i, pr in enumerate(pairs)}
+
+    def R(a, b, c, d):
+        """R_{abcd} from the stored pairs a<b, c<d (antisymmetric in each pair)."""
+        if a == b or c == d:
+            return sp.S.Zero
+        sign = 1
+        if a > b:
+            a, b, sign = b, a, -sign
+        if c > d:
+            c, d, sign = d, c, -sign
+        return sign * low[index[a, b], index[c, d]]
+
+    riemann = [sp.Add(*[inv[a][e] * R(e, b, c, d) for e in range(dim)])
+               for a in range(dim) for b in range(dim) for c in range(dim) for d in range(dim)]
+    ricci_e = [[sp.Add(*[inv[a][e] * R(e, b, a, d) for a in range(dim) for e in range(dim)])
+                for d in range(dim)] for b in range(dim)]
+    ric_defs, ric = _pin(ricci_e, "ri")
+    scalar = sp.Add(*[inv[b][d] * ric[b][d] for b in range(dim) for d in range(dim)])
+    # Kretschmann R_{abcd} R^{abcd} = 4 tr(M B M B) over bivectors (a<b), with
+    # M = R_{(ab)(cd)} and B^{(ab)(pq)} = g^{ap} g^{bq} - g^{aq} g^{bp}.
+    npairs = len(pairs)
+    bdefs, B = _pin([[inv[a][p] * inv[b][q] - inv[a][q] * inv[b][p] for (p, q) in pairs]
+                     for (a, b) in pairs], "bv")
+    xdefs, X = _pin([[sp.Add(*[low[i, m] * B[m][j] for m in range(npairs)])
+                      for j in range(npairs)] for i in range(npairs)], "mb")
+    kretsch = 4 * sp.Add(*[X[i][j] * X[j][i] for i in range(npairs) for j in range(npairs)])
+    n4 = (dim, dim, dim, dim)
+    return [
+        _make("riemann", "Riemann tensor R^a_{bcd}, [a][b][c][d] (MTW sign convention)", "x",
+              x, n4, riemann, pins, solves),
+        _make("ricci", "Ricci tensor R_{bd} = R^a_{bad}, [b][d]", "x", x, (dim, dim),
+              [ric[b][d] for b in range(dim) for d in range(dim)], pins + ric_defs, solves),
+        _make("ricci_scalar", "Ricci scalar g^{bd} R_{bd}", "x", x, (), [scalar],
+              pins + ric_defs, solves),
+        _make("kretschmann", "Kretschmann scalar R_{abcd} R^{abcd}", "x", x, (), [kretsch],
+              pins + bdefs + xdefs, solves),
+    ]
+
+
+def _geodesic_jacobian(geo: Geometry, metric_defs) -> Kernel:
+    """d f_i / d y_j of the geodesic RHS f = [u, a], a = -g^{-1} w:
+    da/dx^k = -g^{-1} (d_k w + d_k g a), da/du^j = -g^{-1} dw/du^j."""
+    dim = geo.dim
+    x, u, dg = geo.coords, geo.velocity, geo.dmetric
+    w = geo.geodesic_force()
+    solves1, cols = _apply_inverse(geo, [[-wd for wd in w]], "ja")
+    adefs, acols = _pin(cols, "ac")
+    acc = acols[0]
+    columns = []
+    for k in range(dim):
+        columns.append([-(sp.diff(w[d], x[k]) + sp.Add(*[dg[k][d, b] * acc[b] for b in range(dim)]))
+                        for d in range(dim)])
+    for j in range(dim):
+        columns.append([-sp.diff(w[d], u[j]) for d in range(dim)])
+    solves2, dcols = _apply_inverse(geo, columns, "jb")
+    n = 2 * dim
+    outs = []
+    for i in range(n):
+        for j in range(n):
+            if i < dim:
+                outs.append(sp.S.One if j == dim + i else sp.S.Zero)
+            else:
+                outs.append(dcols[j][i - dim])
+    return _make("geodesic_jacobian", "d f_i / d y_j of geodesic_rhs, [i][j]", "y", x + u,
+                 (n, n), outs, list(metric_defs) + adefs, solves1 + solves2)
+
+
+def _hamilton_jacobian(geo: Geometry, metric_defs) -> Kernel:
+    """d f_i / d z_j of the Hamiltonian RHS f = [u, F], u = g^{-1} p,
+    F_k = 1/2 d_k g_ab u^a u^b: du/dx^l = -g^{-1} d_l g u, du/dp_j = g^{-1} e_j."""
+    dim = geo.dim
+    x, u, p, dg = geo.coords, geo.velocity, geo.momentum, geo.dmetric
+    solves1, cols = _apply_inverse(geo, [list(p)], "hu")
+    pins = list(metric_defs) + [(u[a], cols[0][a]) for a in range(dim)]
+    columns = [[-sp.Add(*[dg[l][d, b] * u[b] for b in range(dim)]) for d in range(dim)]
+               for l in range(dim)]
+    columns += [[sp.S.One if d == j else sp.S.Zero for d in range(dim)] for j in range(dim)]
+    solves2, dcols = _apply_inverse(geo, columns, "hd")
+    ddefs, du = _pin(dcols, "du")
+    n = 2 * dim
+    outs = []
+    for i in range(dim):
+        outs += [du[j][i] for j in range(n)]
+    for k in range(dim):
+        for j in range(n):
+            e = sp.Add(*[dg[k][a, b] * u[a] * du[j][b] for a in range(dim) for b in range(dim)])
+            if j < dim:
+                e += sp.Add(*[geo.second_derivative(a, b, k, j) * u[a] * u[b]
+                              for a in range(dim) for b in range(dim)]) / 2
+            outs.append(e)
+    return _make("hamilton_jacobian", "d f_i / d z_j of hamilton_rhs, [i][j]", "z", x + p,
+                 (n, n), outs, pins + ddefs, solves1 + solves2)
 
 
 # -- optimisation and scheduling -----------------------------------------------------------
@@ -270,9 +483,11 @@ def _make(name, doc, input_name, input_symbols, shape, outputs, pinned, solves=(
             frontier |= pin_map[s].free_symbols
     pinned = [(s, e) for s, e in pinned if s in live_pins]
 
-    ops_before = (sum(count_ops(e) for _, e in pinned) + sum(count_ops(o) for o in outputs)
-                  + sum(count_ops(e) for mat, rhs, _ in solves for e in mat)
-                  + sum(count_ops(e) for _, rhs, _ in solves for col in rhs for e in col)
+    memo: dict = {}
+    ops_before = (sum(count_ops(e, memo) for _, e in pinned)
+                  + sum(count_ops(o, memo) for o in outputs)
+                  + sum(count_ops(e, memo) for mat, rhs, _ in solves for e in mat)
+                  + sum(count_ops(e, memo) for _, rhs, _ in solves for col in rhs for e in col)
                   + sum(numeric_solve_cost(len(res[0]), len(res)) for _, _, res in solves))
 
     # Fold pinned definitions that are constants or bare symbols into their uses.
@@ -421,13 +636,20 @@ def _hoist_powers(exprs: list[sp.Expr]) -> tuple[list[tuple[sp.Symbol, sp.Expr]]
     """
     neg_uses: dict = {}
     half_uses: dict = {}
-    for e in exprs:
-        for node in sp.preorder_traversal(e):
-            if node.is_Pow and node.exp.is_Rational and not node.base.is_Number:
-                if node.exp.q == 2:
-                    half_uses[node.base] = half_uses.get(node.base, 0) + 1
-                if node.exp < 0:
-                    neg_uses[node.base] = neg_uses.get(node.base, 0) + 1
+    # Count distinct power nodes per base (a node repeated verbatim is CSE's business).
+    seen: set = set()
+    stack = list(exprs)
+    while stack:
+        node = stack.pop()
+        if node in seen or node.is_Atom:
+            continue
+        seen.add(node)
+        if node.is_Pow and node.exp.is_Rational and not node.base.is_Number:
+            if node.exp.q == 2:
+                half_uses[node.base] = half_uses.get(node.base, 0) + 1
+            if node.exp < 0:
+                neg_uses[node.base] = neg_uses.get(node.base, 0) + 1
+        stack.extend(node.args)
     defs: list[tuple[sp.Symbol, sp.Expr]] = []
     names: dict = {}
     counter = iter(range(10 ** 9))

@@ -26,11 +26,14 @@ class Generated:
     seconds: float
 
 
-def generate(spec: Spec, targets=("c", "numpy")) -> Generated:
-    """Run the symbolic stages on a validated spec (raises SpecError for bad metrics)."""
+def generate(spec: Spec, targets=("c", "numpy"), extra_kernels=()) -> Generated:
+    """Run the symbolic stages on a validated spec (raises SpecError for bad metrics).
+
+    extra_kernels: optional kernel groups ("curvature", "jacobian") beyond the spec's own.
+    """
     t0 = time.perf_counter()
     geometry = derive(spec)                 # sympy: metric, derivatives, inverse strategy
-    kernels = build_kernels(geometry)       # IR: CSE'd straight-line kernels
+    kernels = build_kernels(geometry, tuple(extra_kernels))  # IR: CSE'd straight-line kernels
     sources = emit(kernels, targets)        # text: C99 header/source, NumPy module
     return Generated(spec, geometry, kernels, sources, cdef_text(kernels),
                      time.perf_counter() - t0)

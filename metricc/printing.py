@@ -170,30 +170,45 @@ class Printer:
         return f"{table[fname]}({args})"
 
 
-def count_ops(e) -> int:
-    """Floating-point operations of ``e`` as the printers write it (calls count as one)."""
+def count_ops(e, memo: dict | None = None) -> int:
+    """Floating-point operations of ``e`` as the printers write it (calls count as one).
+
+    Counts the expression as a tree (a repeated subexpression counts each time); ``memo``
+    caches per distinct node, so the cost is linear in the expression's DAG size.
+    """
     if not isinstance(e, sp.Basic):
         e = sp.sympify(e)
+    if memo is None:
+        memo = {}
+    return _count(e, memo)
+
+
+def _count(e, memo: dict) -> int:
     if e.is_Atom or e.is_NumberSymbol:
         return 0
+    hit = memo.get(e)
+    if hit is not None:
+        return hit
     if e.is_Add:
-        return len(e.args) - 1 + sum(count_ops(a) for a in e.args)
-    if e.is_Mul:
+        ops = len(e.args) - 1 + sum(_count(a, memo) for a in e.args)
+    elif e.is_Mul:
         sign, coeff, num, den = _split_mul(e)
         n_num = len(num) + (coeff is not None)
-        ops = max(n_num - 1, 0) + sum(count_ops(f) for f in num)
+        ops = max(n_num - 1, 0) + sum(_count(f, memo) for f in num)
         if den:
-            ops += 1 + (len(den) - 1) + sum(count_ops(f) for f in den)
-        return ops
-    if e.is_Pow:
+            ops += 1 + (len(den) - 1) + sum(_count(f, memo) for f in den)
+    elif e.is_Pow:
         base, exp = e.base, e.exp
-        inner = count_ops(base)
+        inner = _count(base, memo)
         if exp.is_Integer:
             n = abs(int(exp))
-            ops = n - 1 if 1 <= n <= MAX_UNROLLED_POWER else 1
-            return inner + ops + (1 if exp < 0 else 0)
-        if exp.is_Rational and exp.q == 2:
+            ops = inner + (n - 1 if 1 <= n <= MAX_UNROLLED_POWER else 1) + (1 if exp < 0 else 0)
+        elif exp.is_Rational and exp.q == 2:
             whole = abs(exp.p) // 2
-            return inner + 1 + (whole if whole else 0) + (1 if exp < 0 else 0)
-        return inner + 1 + count_ops(exp)
-    return 1 + sum(count_ops(a) for a in e.args)
+            ops = inner + 1 + (whole if whole else 0) + (1 if exp < 0 else 0)
+        else:
+            ops = inner + 1 + _count(exp, memo)
+    else:
+        ops = 1 + sum(_count(a, memo) for a in e.args)
+    memo[e] = ops
+    return ops

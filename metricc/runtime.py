@@ -58,6 +58,8 @@ class MetricKernels:
         self.ignorable: tuple[str, ...] = tuple(m["ignorable"])
         self.domain_names: tuple[str, ...] = tuple(m["domain"])
         self.event_names: tuple[str, ...] = tuple(m["events"])
+        self.invariant_names: tuple[str, ...] = tuple(m.get("invariants", ()))
+        self.kernel_groups: tuple[str, ...] = tuple(m.get("groups", ()))
         self.signature: tuple[int, int] = tuple(m["signature"])
         self.inverse_strategy: str = m["inverse_strategy"]
         self.spec_sha256: str = m["spec_sha256"]
@@ -112,6 +114,78 @@ class MetricKernels:
             return ConservedQuantities()
         values = self._call("conserved", y, params)
         return ConservedQuantities({f"p_{c}": values[..., i] for i, c in enumerate(self.ignorable)})
+
+    def invariants(self, y, params=None, form: str = "geodesic") -> dict:
+        """The spec's [invariants]: dict name -> array (...), for y = [x, u] (form="geodesic")
+        or z = [x, p] (form="hamilton")."""
+        if not self.invariant_names:
+            raise ValueError(f"spec {self.name!r} declares no [invariants]")
+        if form not in ("geodesic", "hamilton"):
+            raise ValueError(f"form must be 'geodesic' or 'hamilton', got {form!r}")
+        values = self._call("invariants" if form == "geodesic" else "invariants_hamilton", y,
+                            params)
+        return {name: values[..., i] for i, name in enumerate(self.invariant_names)}
+
+    # -- optional kernels: curvature and Jacobians ---------------------------------------
+    def _optional(self, kernel: str, group: str, arr, params):
+        if kernel not in self.kernel_info:
+            raise ValueError(
+                f"spec {self.name!r} was built without the {group!r} kernels; enable them with "
+                f"kernels = [\"{group}\"] in the spec, metricc.load(..., kernels=[\"{group}\"]) "
+                f"or metricc build --kernels {group}")
+        return self._call(kernel, arr, params)
+
+    def riemann(self, x, params=None) -> np.ndarray:
+        """Riemann tensor: x (..., dim) -> (..., dim, dim, dim, dim), [..., a, b, c, d] =
+        R^a_{bcd} = d_c Gamma^a_{db} - d_d Gamma^a_{cb} + Gamma^a_{ce} Gamma^e_{db}
+        - Gamma^a_{de} Gamma^e_{cb} (MTW 1973 convention). Needs kernels=["curvature"]."""
+        return self._optional("riemann", "curvature", x, params)
+
+    def ricci(self, x, params=None) -> np.ndarray:
+        """Ricci tensor R_{bd} = R^a_{bad}: (..., dim) -> (..., dim, dim)."""
+        return self._optional("ricci", "curvature", x, params)
+
+    def ricci_scalar(self, x, params=None) -> np.ndarray:
+        """Ricci scalar g^{bd} R_{bd}: (..., dim) -> (...)."""
+        return self._optional("ricci_scalar", "curvature", x, params)
+
+    def kretschmann(self, x, params=None) -> np.ndarray:
+        """Kretschmann scalar R_{abcd} R^{abcd}: (..., dim) -> (...)."""
+        return self._optional("kretschmann", "curvature", x, params)
+
+    def geodesic_jacobian(self, y, params=None) -> np.ndarray:
+        """d f_i / d y_j of geodesic_rhs: (..., 2*dim) -> (..., 2*dim, 2*dim) [..., i, j].
+        Needs kernels=["jacobian"]."""
+        return self._optional("geodesic_jacobian", "jacobian", y, params)
+
+    def hamilton_jacobian(self, z, params=None) -> np.ndarray:
+        """d f_i / d z_j of hamilton_rhs: (..., 2*dim) -> (..., 2*dim, 2*dim) [..., i, j]."""
+        return self._optional("hamilton_jacobian", "jacobian", z, params)
+
+    # -- initial data and observers (metricc.observers) ----------------------------------
+    def normalize(self, y, kind: str = "timelike", solve_for: int = 0, params=None) -> np.ndarray:
+        """States [x, u] (..., 2*dim) with g(u,u) = -1 ("timelike"), 0 ("null") by solving
+        for component ``solve_for``, or rescaled to g(u,u) = +1 ("unit"). See
+        metricc.observers.normalize."""
+        from .observers import normalize
+        return normalize(self, y, kind, solve_for, params)
+
+    def frame(self, x, observer="static", params=None) -> np.ndarray:
+        """Orthonormal tetrad (..., dim, dim), [..., a, mu] = e_(a)^mu; row 0 the observer's
+        velocity ("static", "zamo", a 4-velocity array, or None for Riemannian metrics)."""
+        from .observers import frame
+        return frame(self, x, observer, params)
+
+    def from_frame(self, x, v, observer="static", params=None) -> np.ndarray:
+        """The state [x, v^(a) e_(a)^mu] (..., 2*dim) from local components v (..., dim)."""
+        from .observers import from_frame
+        return from_frame(self, x, v, observer, params)
+
+    def camera(self, x, forward, up, fov, shape, observer="static", params=None) -> np.ndarray:
+        """Null states (height, width, 2*dim), one per pixel centre of a pinhole camera at x;
+        see metricc.observers.camera."""
+        from .observers import camera
+        return camera(self, x, forward, up, fov, shape, observer, params)
 
     def momenta(self, y, params=None) -> np.ndarray:
         """The state [x^mu, p_mu] (p_mu = g_{mu nu} u^nu) for y = [x, u] (..., 2*dim)."""
@@ -268,7 +342,14 @@ class MetricKernels:
             start = self._call(norm_kernel, flat, pdict)
             end = self._call(norm_kernel, y_end, pdict)
         drift = np.abs(end - start)
+        invariant_drift = {}
+        if self.invariant_names:
+            with np.errstate(all="ignore"):
+                i0 = self.invariants(flat, pdict, form)
+                i1 = self.invariants(y_end, pdict, form)
+            invariant_drift = {n: np.abs(i1[n] - i0[n]).reshape(lead) for n in i0}
         return IntegrationResult(
+            invariant_drift=invariant_drift,
             y=y_end.reshape(lead + (n,)), lam=lam.reshape(lead),
             status=status_names(codes, self.event_names).reshape(lead),
             steps=steps.astype(np.int64).reshape(lead), samples=samp,
@@ -382,11 +463,28 @@ class MetricKernels:
         return out.reshape(batch + out_shape)
 
 
-def open_spec(spec: Spec, backend: str = "auto") -> MetricKernels:
-    """Kernels for a validated spec: from the cache, generating and compiling on a miss."""
+def build_options(spec: Spec, kernels=None) -> dict:
+    """Cache options: the optional kernel groups asked for beyond the spec's own."""
+    from .spec import OPTIONAL_KERNELS
+    if kernels is None:
+        kernels = ()
+    if isinstance(kernels, str):
+        kernels = [kernels]
+    bad = [k for k in kernels if k not in OPTIONAL_KERNELS]
+    if bad:
+        raise ValueError(f"unknown kernel group {bad[0]!r}; choose from "
+                         f"{', '.join(OPTIONAL_KERNELS)}")
+    extra = sorted(set(kernels) - set(spec.kernels))
+    return {"kernels": extra} if extra else {}
+
+
+def open_spec(spec: Spec, backend: str = "auto", kernels=None) -> MetricKernels:
+    """Kernels for a validated spec: from the cache, generating and compiling on a miss.
+
+    kernels: optional kernel groups ("curvature", "jacobian") beyond the spec's own."""
     if backend not in BACKENDS:
         raise ValueError(f"backend must be one of {', '.join(BACKENDS)}, got {backend!r}")
-    entry = build.ensure_sources(spec)
+    entry = build.ensure_sources(spec, build_options(spec, kernels))
     np_module = build.load_numpy_module(entry)
     c_module = None
     if backend in ("c", "auto"):

@@ -23,7 +23,9 @@ MIN_DIM, MAX_DIM = 2, 8
 MAX_SPEC_BYTES = 1_000_000
 
 TOP_LEVEL_KEYS = ("name", "summary", "coordinates", "signature", "parameters", "define",
-                  "metric", "line_element", "domain", "events")
+                  "metric", "line_element", "domain", "events", "invariants", "kernels")
+# Kernel groups generated only on request (they cost build time and code size).
+OPTIONAL_KERNELS = ("curvature", "jacobian")
 
 _IDENT = re.compile(r"^[A-Za-z_][A-Za-z0-9_]*$")
 _SPEC_NAME = re.compile(r"^[a-z][a-z0-9_]*$")
@@ -80,6 +82,8 @@ class Spec:
     line_element: Expression | None
     domain: tuple[tuple[str, Expression], ...]
     events: tuple[tuple[str, Expression], ...]
+    invariants: tuple[tuple[str, Expression], ...]
+    kernels: tuple[str, ...]
     source: str
     canonical: str
     sha256: str
@@ -185,6 +189,10 @@ class _Validator:
             if ev_name in RESERVED_EVENT_NAMES:
                 raise self.fail(f"event name {ev_name!r} is reserved (an integrator status)",
                                 "events", ev_name)
+        state_names = ({"d" + c for c in coordinates} | {"p_" + c for c in coordinates}
+                       | {"norm"})
+        invariants = self.labelled_table("invariants", known | state_names, coordinates)
+        kernels = self.kernel_groups()
         canonical = json.dumps({
             "name": name, "summary": summary, "coordinates": list(coordinates),
             "signature": signature,
@@ -194,11 +202,14 @@ class _Validator:
             "line_element": line_element.text if line_element else None,
             "domain": [[k, e.text] for k, e in domain],
             "events": [[k, e.text] for k, e in events],
+            "invariants": [[k, e.text] for k, e in invariants],
+            "kernels": list(kernels),
         }, sort_keys=True, separators=(",", ":"), ensure_ascii=True)
         return Spec(path=self.path, name=name, summary=summary, coordinates=coordinates,
                     signature=signature, parameters=parameters, defines=defines,
                     metric=metric, line_element=line_element, domain=domain, events=events,
-                    source=self.text, canonical=canonical,
+                    invariants=invariants, kernels=kernels, source=self.text,
+                    canonical=canonical,
                     sha256=hashlib.sha256(canonical.encode()).hexdigest())
 
     # -- top-level keys ------------------------------------------------------------------
@@ -354,6 +365,19 @@ class _Validator:
             out.append((label, e))
         return tuple(out)
 
+    def kernel_groups(self) -> tuple[str, ...]:
+        value = self.data.get("kernels", [])
+        if not isinstance(value, list) or not all(isinstance(v, str) for v in value):
+            raise self.fail("must be a list of names, e.g. [\"curvature\", \"jacobian\"]",
+                            None, "kernels")
+        for v in value:
+            if v not in OPTIONAL_KERNELS:
+                near = ex.closest(v, OPTIONAL_KERNELS)
+                raise self.fail(f"unknown kernel group {v!r}" + (f" (did you mean {near!r}?)"
+                                if near else f"; choose from {', '.join(OPTIONAL_KERNELS)}"),
+                                None, "kernels")
+        return tuple(sorted(set(value)))
+
     # -- helpers -------------------------------------------------------------------------
     def table(self, name: str) -> dict:
         value = self.data.get(name, {})
@@ -406,7 +430,8 @@ class _Validator:
                 pass  # unreachable: defines are in known
             hint = ""
             if used.startswith("d") and used[1:] in coords:
-                hint = " (differentials d<coordinate> are only allowed in line_element)"
+                hint = (" (d<coordinate> is a differential in line_element and a velocity in "
+                        "[invariants]; it is not allowed here)")
             else:
                 near = ex.closest(used, set(known) | set(ex.CONSTANTS))
                 if near:

@@ -27,6 +27,16 @@ def _parse_targets(text: str) -> tuple[str, ...]:
     return targets
 
 
+def _parse_groups(text: str) -> tuple[str, ...]:
+    from .spec import OPTIONAL_KERNELS
+    groups = tuple(t.strip() for t in text.split(",") if t.strip())
+    bad = [g for g in groups if g not in OPTIONAL_KERNELS]
+    if bad:
+        raise argparse.ArgumentTypeError(f"unknown kernel group {bad[0]!r}; choose from "
+                                         f"{', '.join(OPTIONAL_KERNELS)}")
+    return groups
+
+
 def _parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(prog="metricc", description="Compile metric specs (TOML) into "
                                 "geodesic kernels: standalone C99 and NumPy.")
@@ -38,6 +48,9 @@ def _parser() -> argparse.ArgumentParser:
     b.add_argument("--target", type=_parse_targets, default=DEFAULT_TARGETS, metavar="LIST",
                    help="comma-separated targets: c (NAME.h + NAME.c), numpy (NAME_numpy.py), "
                         "cffi (NAME_cffi_build.py + the C pair); default c,numpy")
+    b.add_argument("--kernels", type=_parse_groups, default=(), metavar="LIST",
+                   help="optional kernel groups to add: curvature (Riemann, Ricci, "
+                        "Kretschmann), jacobian (of both right-hand sides)")
     b.add_argument("--depfile", metavar="FILE",
                    help="also write a Make-format dependency file (outputs depend on the spec "
                         "and on metricc itself), for Make, Ninja and CMake")
@@ -110,7 +123,7 @@ def cmd_build(args) -> int:
     results = []
     for path in args.specs:
         spec = load_spec(path)
-        results.append(generate(spec, args.target))
+        results.append(generate(spec, args.target, extra_kernels=args.kernels))
     names = [r.spec.name for r in results]
     dup = {n for n in names if names.count(n) > 1}
     if dup:

@@ -18,6 +18,7 @@ from .integrate import IntegrationResult
 from .spec import Spec
 
 BACKENDS = ("auto", "c", "numpy")
+NUMPY_CHUNK = 8192   # states per NumPy kernel call
 
 
 class ConservedQuantities(dict):
@@ -48,7 +49,7 @@ class MetricKernels:
         self._entry = entry
         self._manifest = m
         self._c = c_module
-        self._np = np_module
+        self._np_module = np_module
         self.name: str = m["name"]
         self.summary: str = m["summary"]
         self.coordinates: tuple[str, ...] = tuple(m["coordinates"])
@@ -64,6 +65,24 @@ class MetricKernels:
         self.inverse_strategy: str = m["inverse_strategy"]
         self.spec_sha256: str = m["spec_sha256"]
         self.kernel_info: dict = m["kernels"]
+
+    def __reduce__(self):
+        # Pickled as the spec text: a Dask worker rebuilds (usually: loads from its own
+        # cache) the kernels on first use; nothing machine-specific travels.
+        origin = getattr(self, "_origin", None)
+        if origin is None:
+            raise TypeError(f"kernels of {self.name!r} loaded from generated files cannot be "
+                            "pickled; load them with metricc.load or metricc.loads")
+        from .cluster import rebuild
+        return rebuild, origin
+
+    @property
+    def _np(self):
+        """The generated NumPy module, imported on first use (a C-backend warm load never
+        needs it)."""
+        if self._np_module is None:
+            self._np_module = build.load_numpy_module(self._entry)
+        return self._np_module
 
     def __repr__(self) -> str:
         return (f"<MetricKernels {self.name!r} ({', '.join(self.coordinates)}) "
@@ -252,6 +271,11 @@ class MetricKernels:
         (N, 2*dim), lam (N,), status (N,) str, steps (N,), samples (N, S, 2*dim) or None, drift
         (N,).
         """
+        from .cluster import integrate_dask, is_dask_array
+        if is_dask_array(y0):
+            return integrate_dask(self, y0, lam_end, params=params, rtol=rtol, atol=atol,
+                                  max_steps=max_steps, events=events, samples=samples,
+                                  form=form, method=method, threads=threads)
         from .integrate import DOMAIN, EVENT_BASE, IntegrationResult, integrate_numpy, \
             status_names
         from .tableaus import DEFAULT_METHOD, METHODS
@@ -437,12 +461,24 @@ class MetricKernels:
         batch = np.broadcast_shapes(arr.shape[:-1], *[v.shape for v in given.values()])
         out_shape = tuple(info["output_shape"])
         values = [given.get(p, np.float64(d)) for p, d in self.parameters.items()]
+        n_in = info["input_size"]
         if self._c is None:
             fn = getattr(self._np, kernel)
+            count = int(np.prod(batch, dtype=np.int64))
+            if count <= NUMPY_CHUNK:
+                with np.errstate(all="ignore"):
+                    result = fn(arr, tuple(values))
+                return np.array(np.broadcast_to(result, batch + out_shape), dtype=np.float64)
+            # Large batches in cache-sized chunks: NumPy's temporaries then stay in cache
+            # (about 3x faster at 1e5 states than one pass).
+            flat = np.broadcast_to(arr, batch + (n_in,)).reshape(-1, n_in)
+            pflat = [np.broadcast_to(v, batch).reshape(-1) for v in values]
+            out = np.empty((count,) + out_shape)
             with np.errstate(all="ignore"):
-                result = fn(arr, tuple(values))
-            return np.array(np.broadcast_to(result, batch + out_shape), dtype=np.float64)
-        n_in = info["input_size"]
+                for start in range(0, count, NUMPY_CHUNK):
+                    stop = min(count, start + NUMPY_CHUNK)
+                    out[start:stop] = fn(flat[start:stop], tuple(p[start:stop] for p in pflat))
+            return out.reshape(batch + out_shape)
         n_out = int(np.prod(out_shape, dtype=np.int64))
         flat = np.ascontiguousarray(np.broadcast_to(arr, batch + (n_in,))).reshape(-1, n_in)
         count = flat.shape[0]
@@ -485,7 +521,7 @@ def open_spec(spec: Spec, backend: str = "auto", kernels=None) -> MetricKernels:
     if backend not in BACKENDS:
         raise ValueError(f"backend must be one of {', '.join(BACKENDS)}, got {backend!r}")
     entry = build.ensure_sources(spec, build_options(spec, kernels))
-    np_module = build.load_numpy_module(entry)
+    np_module = build.load_numpy_module(entry) if backend == "numpy" else None
     c_module = None
     if backend in ("c", "auto"):
         try:
@@ -497,7 +533,9 @@ def open_spec(spec: Spec, backend: str = "auto", kernels=None) -> MetricKernels:
             first = str(exc).splitlines()[0]
             warnings.warn(f"metricc: C backend unavailable ({first}); using the NumPy backend",
                           MetriccWarning, stacklevel=3)
-    return MetricKernels(entry, "c" if c_module is not None else "numpy", c_module, np_module)
+    k = MetricKernels(entry, "c" if c_module is not None else "numpy", c_module, np_module)
+    k._origin = (spec.source, spec.path, backend, tuple(sorted(set(kernels or ()))))
+    return k
 
 
 def open_generated(spec: Spec, directory, backend: str) -> MetricKernels:

@@ -64,8 +64,8 @@ def _parser() -> argparse.ArgumentParser:
     sh.add_argument("spec", metavar="SPEC")
     sh.add_argument("--format", choices=("text", "latex"), default="text")
     sh.add_argument("--parts", default="metric,christoffel", metavar="LIST",
-                    help="comma-separated: metric, inverse_metric, christoffel, conserved "
-                         "(default metric,christoffel; 'all' for every part)")
+                    help="comma-separated: metric, inverse_metric, christoffel, conserved, "
+                         "geodesic_rhs (default metric,christoffel; 'all' for every part)")
 
     v = sub.add_parser("verify", help="self-check a spec's kernels at random points inside "
                        "its domain; exit 1 on any failure")
@@ -292,7 +292,7 @@ def cmd_integrate(args) -> int:
     return 0
 
 
-SHOW_PARTS = ("metric", "inverse_metric", "christoffel", "conserved")
+SHOW_PARTS = ("metric", "inverse_metric", "christoffel", "conserved", "geodesic_rhs")
 
 
 def cmd_show(args) -> int:

@@ -72,6 +72,20 @@ def components(geo: Geometry, what: str) -> list[tuple[str, tuple, sp.Expr]]:
                     if e != 0:
                         out.append((kind, (cn[a], cn[b], cn[c]), e))
         return out
+    if what == "geodesic_rhs":
+        # du^a/dlambda = -g^{ad} w_d with w_d = Gamma_{d bc} u^b u^c, velocities as d<coord>
+        vel = {v: sp.Symbol(f"d{n}", real=True) for v, n in zip(geo.velocity, cn)}
+        w = [e.xreplace(vel) for e in geo.geodesic_force()]
+        for a in range(dim):
+            if inverse is None:
+                e, kind = w[a], "w"
+            else:
+                e = -sp.Add(*[inverse[a, d] * w[d] for d in range(dim) if inverse[a, d] != 0])
+                kind = "acc"
+            e = _tidy(e.xreplace(names))
+            if e != 0:
+                out.append((kind, (cn[a],), e))
+        return out
     if what == "conserved":
         for k in geo.ignorable:
             e = sp.Add(*[geo.metric[k, j] * sp.Symbol(f"d{cn[j]}", real=True)
@@ -102,7 +116,9 @@ def _text(e: sp.Expr) -> str:
 _TITLES = {"metric": "metric g_{mu nu} (non-zero components)",
            "inverse_metric": "inverse metric g^{mu nu} (non-zero components)",
            "christoffel": "Christoffel symbols (non-zero, b <= c)",
-           "conserved": "conserved momenta of ignorable coordinates"}
+           "conserved": "conserved momenta of ignorable coordinates",
+           "geodesic_rhs": "geodesic equation: accelerations d^2 x^a/dlambda^2 "
+                           "(velocities written d<coordinate>)"}
 
 
 def render(geo: Geometry, parts: list[str], fmt: str = "text") -> str:
@@ -120,6 +136,9 @@ def render(geo: Geometry, parts: list[str], fmt: str = "text") -> str:
         title = _TITLES[part]
         if part == "inverse_metric" and _inverse(geo) is None:
             title += ": solved numerically at run time (dense block), not shown"
+        if part == "geodesic_rhs" and comps and comps[0][0] == "w":
+            title = ("geodesic equation: g_{ab} d^2 x^b/dlambda^2 = -w_a with w_a = "
+                     "Gamma_{a bc} u^b u^c shown (the inverse metric is solved numerically)")
         if part == "christoffel" and comps and comps[0][0] == "Gamma_first":
             title = ("Christoffel symbols of the first kind Gamma_{d bc} (the inverse metric is "
                      "solved numerically at run time)")
@@ -142,6 +161,10 @@ def render(geo: Geometry, parts: list[str], fmt: str = "text") -> str:
 
 
 def _text_lhs(kind: str, idx: tuple) -> str:
+    if kind == "acc":
+        return f"d^2 {idx[0]}/dlambda^2"
+    if kind == "w":
+        return f"w_{idx[0]}"
     if kind == "g":
         return f"g_{{{idx[0]} {idx[1]}}}"
     if kind == "ginv":
@@ -159,6 +182,10 @@ def _latex_name(n: str) -> str:
 
 def _latex_lhs(kind: str, idx: tuple) -> str:
     L = [_latex_name(i) for i in idx]
+    if kind == "acc":
+        return f"\\frac{{d^2 {L[0]}}}{{d\\lambda^2}}"
+    if kind == "w":
+        return f"w_{{{L[0]}}}"
     if kind == "g":
         return f"g_{{{L[0]} {L[1]}}}"
     if kind == "ginv":

@@ -21,14 +21,17 @@ __all__ = ["load", "loads", "SpecError", "BuildError", "MetriccWarning", "Metric
            "Spec", "load_spec", "parse_spec", "__version__"]
 
 
-def load(path: str | Path, backend: str = "auto", kernels=None) -> MetricKernels:
+def load(path: str | Path, backend: str = "auto", kernels=None,
+         vector_math: bool = False) -> MetricKernels:
     """Kernels of the spec file at ``path``. backend: "c", "numpy" or "auto" (C if a
     compiler works, else NumPy with one warning). kernels: optional groups to build beyond
     the spec's own ``kernels`` key ("curvature", "jacobian"). Raises SpecError for a bad
-    spec."""
-    return open_spec(load_spec(path), backend, kernels)
+    spec. vector_math: compile the structure-of-arrays entry points (k.soa) vectorised
+    with glibc's libmvec (x86-64 Linux)."""
+    return open_spec(load_spec(path), backend, kernels, vector_math)
 
 
-def loads(text: str, backend: str = "auto", path: str = "<string>", kernels=None) -> MetricKernels:
+def loads(text: str, backend: str = "auto", path: str = "<string>", kernels=None,
+          vector_math: bool = False) -> MetricKernels:
     """Kernels of spec text (TOML); ``path`` only names the text in error messages."""
-    return open_spec(parse_spec(text, path), backend, kernels)
+    return open_spec(parse_spec(text, path), backend, kernels, vector_math)

@@ -166,6 +166,7 @@ def ensure_sources(spec: Spec, options: dict | None = None) -> CacheEntry:
             for name, text in result.sources.files.items():
                 atomic_write(tmp / name, text)
             manifest = manifest_of(result)
+            manifest["options"] = dict(options or {})
             atomic_write(tmp / MANIFEST, json.dumps(manifest, indent=1, sort_keys=True))
             if directory.exists():  # a stale entry (other version or format): replace it
                 shutil.rmtree(directory, ignore_errors=True)
@@ -259,6 +260,18 @@ def openmp_flags(cc: list[str]) -> list[str]:
     return flags
 
 
+def vector_math_flags(name: str) -> list[str]:
+    """Compiler flags of a vector-math build (vectorised *_soa loops with glibc's libmvec).
+
+    Only values of sin, cos, exp, log and pow change (to libmvec's, within 4 ulp); no
+    reassociation or fast-math is involved.
+    """
+    if sys.platform != "linux" or "x86_64" not in (sysconfig.get_platform() or ""):
+        raise BuildError("vector math needs glibc's libmvec on x86-64 Linux")
+    return [f"-D{name.upper()}_VECTOR_MATH", "-O3", "-fopenmp-simd", "-fno-builtin-sin",
+            "-fno-builtin-cos"]
+
+
 def _link_flags() -> list[str]:
     if sys.platform == "darwin":
         return ["-bundle", "-undefined", "dynamic_lookup"]
@@ -301,6 +314,9 @@ def ensure_binary(entry: CacheEntry) -> CacheEntry:
         probe_name = "_metricc_probe"
         source_for_key = extension_source(entry, probe_name)
         omp = openmp_flags(cc)
+        extra = vector_math_flags(entry.manifest["name"]) \
+            if entry.manifest.get("options", {}).get("vector_math") else []
+        omp = omp + extra
         argv_for_key = cc + list(COMPILE_FLAGS) + omp + _link_flags()
         bkey = hashlib.sha256(json.dumps([source_for_key, argv_for_key, ext, __version__])
                               .encode()).hexdigest()
@@ -312,7 +328,7 @@ def ensure_binary(entry: CacheEntry) -> CacheEntry:
             c_file.write_text(source, encoding="utf-8")
             out = Path(tmp) / filename
             argv = cc + list(COMPILE_FLAGS) + omp + ["-I", include] + _link_flags() + \
-                [str(c_file), "-o", str(out), "-lm"]
+                [str(c_file), "-o", str(out)] + (["-lmvec"] if extra else []) + ["-lm"]
             t0 = time.perf_counter()
             try:
                 proc = subprocess.run(argv, capture_output=True, text=True, timeout=600)

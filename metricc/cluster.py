@@ -14,15 +14,15 @@ import numpy as np
 _REBUILT: dict = {}
 
 
-def rebuild(source: str, path: str, backend: str, kernels: tuple):
+def rebuild(source: str, path: str, backend: str, kernels: tuple, vector_math: bool = False):
     """Unpickle a MetricKernels: the same spec, loaded once per process."""
     from .runtime import open_spec
     from .spec import parse_spec
     spec = parse_spec(source, path)
-    key = (spec.sha256, backend, tuple(kernels))
+    key = (spec.sha256, backend, tuple(kernels), vector_math)
     k = _REBUILT.get(key)
     if k is None:
-        k = open_spec(spec, backend, list(kernels) or None)
+        k = open_spec(spec, backend, list(kernels) or None, vector_math)
         _REBUILT[key] = k
     return k
 

@@ -1,0 +1,64 @@
+"""Structure-of-arrays entry points and the optional vector-math (libmvec) build."""
+from __future__ import annotations
+
+import platform
+import shutil
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+
+import metricc
+from metricc.cli import main
+from tests.conftest import SHIPPED, SPECS, needs_cc
+from tests.support import random_params, random_states
+
+LIBMVEC = sys.platform == "linux" and platform.machine() == "x86_64"
+KERNELS = ("metric", "christoffel", "geodesic_rhs", "hamilton_rhs", "norm")
+
+
+@pytest.mark.parametrize("backend", ["numpy", pytest.param("c", marks=needs_cc)])
+@pytest.mark.parametrize("name", SHIPPED)
+def test_soa_equals_the_scalar_kernels(shipped, name, backend):
+    k = shipped[name][backend]
+    rng = np.random.default_rng(3)
+    y = random_states(name, rng, 257)
+    p = random_params(name, rng, 257)
+    for kernel in KERNELS:
+        arr = y[:, :k.dim] if kernel in ("metric", "christoffel") else y
+        aos = k._call(kernel, arr, p).reshape(len(y), -1)
+        soa = k.soa(kernel, np.ascontiguousarray(arr.T), p)
+        np.testing.assert_array_equal(soa.T, aos, err_msg=kernel)
+
+
+@needs_cc
+@pytest.mark.skipif(not LIBMVEC, reason="libmvec vector math needs x86-64 Linux")
+@pytest.mark.parametrize("name", ["kerr", "ellipsoid", "sphere"])
+def test_vector_math_build_stays_within_a_few_ulp(name):
+    try:
+        kv = metricc.load(SPECS / f"{name}.toml", vector_math=True)
+    except metricc.BuildError as exc:  # e.g. no libmvec on this system
+        pytest.skip(f"vector-math build failed: {exc}")
+    k = metricc.load(SPECS / f"{name}.toml")
+    rng = np.random.default_rng(4)
+    y = random_states(name, rng, 4096)
+    for kernel in KERNELS:
+        arr = y[:, :k.dim] if kernel in ("metric", "christoffel") else y
+        ref = k._call(kernel, arr, None).reshape(len(y), -1)
+        vec = kv.soa(kernel, np.ascontiguousarray(arr.T)).T
+        # Vector sin/cos differ from libm's by at most 4 ulp (glibc's documented bound); the
+        # outputs then agree to a few ulp of their magnitude (cancellation can make a small
+        # component's own relative error larger).
+        scale = np.max(np.abs(ref), axis=1, keepdims=True) + 1e-300
+        assert np.max(np.abs(vec - ref) / scale) < 16 * np.finfo(float).eps, kernel
+
+
+@needs_cc
+def test_standalone_vector_math_compiles_warning_free(tmp_path):
+    cc = shutil.which("cc") or shutil.which("gcc")
+    assert main(["build", str(SPECS / "kerr.toml"), "--out", str(tmp_path), "--target", "c",
+                 "-q"]) == 0
+    subprocess.run([cc, "-std=c99", "-Wall", "-Wextra", "-Werror", "-O3", "-fopenmp-simd",
+                    "-DKERR_VECTOR_MATH", "-fno-builtin-sin", "-fno-builtin-cos", "-c",
+                    "kerr.c"], cwd=tmp_path, check=True, capture_output=True, timeout=300)

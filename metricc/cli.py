@@ -1,4 +1,4 @@
-"""Command line: ``metricc build SPEC... --out DIR``, ``metricc integrate SPEC ...``.
+"""Command line: ``metricc build | show | verify | integrate | render``.
 
 User mistakes (a bad spec, an unwritable folder) print one line and exit with status 1; only
 bugs in metricc itself show a traceback.
@@ -75,6 +75,9 @@ def _parser() -> argparse.ArgumentParser:
                         "instead of freshly generated ones")
     v.add_argument("--points", type=int, default=24, help="sample points (default 24)")
     v.add_argument("--seed", type=int, default=1)
+
+    from . import render
+    render.add_parser(sub)
 
     g = sub.add_parser("integrate", help="integrate a batch of geodesics from a file of states")
     g.add_argument("spec", metavar="SPEC", help="spec file (.toml)")
@@ -361,6 +364,9 @@ def main(argv=None) -> int:
             return cmd_show(args)
         if args.command == "verify":
             return cmd_verify(args)
+        if args.command == "render":
+            from . import render
+            return render.run(args)
     except (SpecError, BuildError) as exc:
         print(str(exc).splitlines()[0] if isinstance(exc, SpecError) else f"metricc: error: {exc}",
               file=sys.stderr)

@@ -194,9 +194,12 @@ def camera(k, x, forward, up, fov, shape, observer="static", params=None) -> np.
     forward, up: spatial directions in the observer's frame (components along e_(1), e_(2),
     e_(3)); fov: full horizontal angle (radians); shape: (height, width). Pixel (0, 0) is top
     left; columns run along forward x up (to the right), rows opposite to up. Each state's
-    velocity has local components (1, d) with d the unit direction through the pixel centre:
-    it points from the camera into the scene (integrate with lam_end > 0; the physical photon
-    travels the reversed path).
+    velocity has local components (-1, d) with d the unit direction through the pixel centre:
+    the photon that reaches the camera from direction d has momentum k = e_(0) - d, and the
+    state carries -k, which points from the camera into the scene and backwards in time.
+    Integrate with lam_end > 0: the physical photon travels the reversed path, with
+    momentum p_mu = -(g u)_mu (which matters for redshift). Taking -k rather than e_(0) + d
+    matters in rotating spacetimes: reversing time reverses the rotation.
     """
     if k.dim != 4 or not _lorentzian(k):
         raise ValueError(f"{k.name}: the camera needs a 4-dimensional Lorentzian metric")
@@ -222,7 +225,7 @@ def camera(k, x, forward, up, fov, shape, observer="static", params=None) -> np.
     sy = (1 - (np.arange(h) + 0.5) / h * 2) * half * h / w
     d = f + sx[None, :, None] * right + sy[:, None, None] * upv
     d /= np.linalg.norm(d, axis=-1, keepdims=True)
-    local = np.concatenate([np.ones((h, w, 1)), d], axis=-1)
+    local = np.concatenate([-np.ones((h, w, 1)), d], axis=-1)
     e = frame(k, x, observer, params)
     u = np.einsum("hwa,am->hwm", local, e)
     return np.concatenate([np.broadcast_to(x, (h, w, 4)), u], axis=-1)

@@ -383,15 +383,10 @@ def render_shadow(k, distance=500.0, inclination=80.0, fov=None, shape=(240, 320
     forward = np.array([-1.0, 0.0, 0.0])
     up = np.array([0.0, -math.cos(CAMERA_ROLL), math.sin(CAMERA_ROLL)])
     y0 = k.camera(x_cam, forward, up, fov, (h, w), observer=observer, params=params)
-    # k.camera gives the future-pointing velocity u = e_(0) + d (local components (1, d)).
-    # The photon that reaches the camera from direction d has momentum e_(0) - d; traced
-    # backwards into the scene its tangent is -(e_(0) - d) = -e_(0) + d. In a static metric
-    # both curves have the same spatial path (t -> -t is a symmetry), but not in a rotating one
-    # (t -> -t turns Kerr's spin around), so use the time-reversed one: past-pointing,
-    # integrated with a positive affine parameter.
-    e0 = k.frame(x_cam, observer, params)[0]
+    # k.camera's states carry the time-reversed photon (-e_(0) + d: past-pointing, into the
+    # scene), integrated with a positive affine parameter; the physical photon momentum is
+    # minus the state's.
     flat = y0.reshape(-1, 8).copy()
-    flat[:, 4:] -= 2.0 * e0
     N = flat.shape[0]
     lam_end = 2.0 * distance + 100.0 * m if lam_end is None else float(lam_end)
 
@@ -810,7 +805,7 @@ def add_parser(subparsers):
                    help="local speed of timelike geodesics (default 0.5)")
     f.add_argument("--angles", default=None, metavar="DEG0,DEG1",
                    help="launch angles from the first axis toward the second (default: the "
-                        "full circle)")
+                        "full circle; write --angles=-60,60 when the first is negative)")
     f.add_argument("--samples", type=int, default=400, help="samples per geodesic (default 400)")
     f.add_argument("--rtol", type=float, default=1e-10)
     return r

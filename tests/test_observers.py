@@ -478,8 +478,8 @@ def test_camera_geometry(shipped, backend, forward, up):
     np.testing.assert_array_equal(cam[..., :4], np.broadcast_to(x, (H, W, 4)))
     assert np.all(rel_residual(k, cam, 0.0) < 1e-13)
     v = schwarzschild_local(cam)
-    np.testing.assert_allclose(v[..., 0], 1.0, rtol=1e-13)
-    d = v[..., 1:] / v[..., :1]
+    np.testing.assert_allclose(v[..., 0], -1.0, rtol=1e-13)
+    d = v[..., 1:] / -v[..., :1]  # local components (-1, d)
     np.testing.assert_allclose(np.linalg.norm(d, axis=-1), 1.0, rtol=1e-13)
     # the centre pixel looks along forward
     np.testing.assert_allclose(d[H // 2, W // 2], forward, atol=1e-13)
@@ -495,14 +495,14 @@ def test_camera_geometry(shipped, backend, forward, up):
     # the horizontal extent between the outer pixel centres is fov minus at most one pixel
     ext = np.arccos(np.clip(d[H // 2, 0] @ d[H // 2, -1], -1, 1))
     assert fov * (1 - 1 / W) - 1e-12 <= ext <= fov + 1e-12
-    # rays start into the scene: the same state as from_frame with local (1, d)
+    # rays start into the scene, backwards in time: from_frame with local (-1, d)
     ref = k.from_frame(np.broadcast_to(x, (H, W, 4)),
-                       np.concatenate([np.ones((H, W, 1)), d], axis=-1), observer="static")
+                       np.concatenate([-np.ones((H, W, 1)), d], axis=-1), observer="static")
     np.testing.assert_allclose(cam, ref, rtol=1e-13, atol=1e-15)
 
 
 def test_camera_kerr_zamo(shipped, backend):
-    """A camera carried by a ZAMO in Kerr: null, local components (1, d) in the ZAMO frame."""
+    """A camera carried by a ZAMO in Kerr: null, local components (-1, d) in the ZAMO frame."""
     k = _k(shipped, "kerr", backend)
     x = np.array([0.0, 12.0, 1.3, 0.0])
     fwd, up = np.array([-1.0, 0.0, 0.0]), np.array([0.0, -1.0, 0.0])
@@ -510,9 +510,9 @@ def test_camera_kerr_zamo(shipped, backend):
     assert cam.shape == (3, 5, 8)
     assert np.all(rel_residual(k, cam, 0.0) < 1e-13)
     v = frame_local(k, cam, "zamo")
-    np.testing.assert_allclose(v[..., 0], 1.0, rtol=1e-12)
+    np.testing.assert_allclose(v[..., 0], -1.0, rtol=1e-12)
     np.testing.assert_allclose(v[1, 2, 1:], fwd, atol=1e-12)
-    assert np.all(cam[..., 4] > 0)
+    assert np.all(cam[..., 4] < 0)  # past-pointing: the time-reversed photon
 
 
 @pytest.mark.parametrize("r_o", [15.0, 40.0])
@@ -529,7 +529,7 @@ def test_schwarzschild_shadow_edge(shipped, backend, r_o):
     H, W = 5, 41
     cam = k.camera(x, fwd, up, 3 * alpha, (H, W), observer="static")
     v = schwarzschild_local(cam)
-    d = v[..., 1:] / v[..., :1]
+    d = v[..., 1:] / -v[..., :1]  # local components (-1, d)
     ang = np.arccos(np.clip(d @ fwd, -1, 1))
     # one pixel: the largest angle between horizontally neighbouring pixel centres
     pix = np.max(np.arccos(np.clip(np.sum(d[:, 1:] * d[:, :-1], axis=-1), -1, 1)))

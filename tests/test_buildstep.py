@@ -76,7 +76,7 @@ def test_show_text_matches_textbook_schwarzschild(capsys):
 def test_show_latex(capsys):
     assert main(["show", str(SPECS / "sphere.toml"), "--format", "latex", "--parts", "all"]) == 0
     text = capsys.readouterr().out
-    assert text.count("\\begin{align*}") == 4
+    assert text.count("\\begin{align*}") == 5
     assert "\\Gamma^{\\theta}_{\\phi \\phi} &= - \\sin{\\left(\\theta \\right)}" in text
     assert "g^{\\theta \\theta} &= \\frac{1}{R^{2}}" in text
 

@@ -37,7 +37,8 @@ from .spec import Spec
 
 MANIFEST = "manifest.json"
 MANIFEST_FORMAT = 1
-COMPILE_FLAGS = ("-O2", "-std=c99", "-fPIC", "-fno-math-errno", "-ffp-contract=off")
+COMPILE_FLAGS = ("-O3", "-std=c99", "-fPIC", "-fno-semantic-interposition", "-fno-math-errno",
+                 "-ffp-contract=off")
 
 
 def cache_root() -> Path:

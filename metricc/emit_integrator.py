@@ -121,22 +121,14 @@ def integrator_context(ks) -> dict:
     nev, ndom = len(ks.events), len(ks.domain)
     nstop = nev + ndom
     stop_body = []
-    if nev:
-        stop_body.append(f"double ev[{nev}];")
-    if ndom:
-        stop_body.append(f"double dom[{ndom}];")
-    if nev:
-        stop_body.append(f"{name}_events(y, params, ev);")
+    if nstop:
+        stop_body.append(f"{name}_stops(y, params, g);")
         for j in range(nev):
-            stop_body.append(f"g[{j}] = (mask >> {j}) & 1UL ? ev[{j}] : 1.0;")
+            stop_body.append(f"if (!((mask >> {j}) & 1UL)) g[{j}] = 1.0;")
+        if not nev:
+            stop_body.append("(void)mask;")
     else:
-        stop_body.append("(void)mask;")
-    if ndom:
-        stop_body.append(f"{name}_domain(y, params, dom);")
-        for j in range(ndom):
-            stop_body.append(f"g[{nev + j}] = dom[{j}];")
-    if not nstop:
-        stop_body += ["(void)y;", "(void)params;", "g[0] = 1.0;"]
+        stop_body += ["(void)y;", "(void)params;", "(void)mask;", "g[0] = 1.0;"]
     stop_code = (f"static {P}_FN int {name}_stop_code(int j)\n{{\n"
                  f"    return j < {nev} ? {EVENT_BASE} + j : {DOMAIN};\n}}\n")
 

@@ -154,6 +154,12 @@ def build_kernels(geo: Geometry, extra: tuple[str, ...] = ()) -> KernelSet:
     if geo.events:
         kernels.append(_make("events", "event expressions (a state stops where one is <= 0)",
                              "x", x, (len(geo.events),), [e for _, e in geo.events], []))
+    if geo.events or geo.domain:
+        # events then domain in one kernel, sharing subexpressions: what the integrator
+        # evaluates after every step
+        stops = [e for _, e in geo.events] + [e for _, e in geo.domain]
+        kernels.append(_make("stops", "the events, then the domain expressions", "x", x,
+                             (len(stops),), stops, []))
     blocks = tuple({"coordinates": [spec.coordinates[i] for i in b.indices],
                     "strategy": b.strategy, "cost_symbolic": b.cost_symbolic,
                     "cost_numeric": b.cost_numeric} for b in geo.blocks)

@@ -377,16 +377,12 @@ class MetricKernels:
                 codes_list += [EVENT_BASE + k for k in active]
             if self.domain_names:
                 codes_list += [DOMAIN] * len(self.domain_names)
-            ev_fn = getattr(self._np, "events", None)
-            dom_fn = getattr(self._np, "domain", None)
+            stops_fn = getattr(self._np, "stops", None)
+            nev = len(self.event_names)
+            columns = list(active) + list(range(nev, nev + len(self.domain_names)))
 
             def stop(x, p):
-                parts = []
-                if active:
-                    parts.append(ev_fn(x, p)[:, active])
-                if self.domain_names:
-                    parts.append(dom_fn(x, p))
-                return np.concatenate(parts, axis=1)
+                return stops_fn(x, p)[:, columns]
 
             y_end, lam, codes, steps, samp = integrate_numpy(
                 fn, stop if codes_list else None, flat, lam_end, tuple(values), rtol=rtol,

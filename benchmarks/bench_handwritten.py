@@ -145,6 +145,21 @@ def numba_rate(y: np.ndarray) -> float | None:
     return len(y) / best
 
 
+def handwritten_ops() -> int:
+    """Operations in the hand-written kernel: binary + - * / and calls, counted in its source."""
+    import re
+    src = (HERE / "handwritten" / "kerr_rhs_hand.c").read_text()
+    start = src.index("{", src.index("void hand_kerr_geodesic_rhs("))
+    body = re.sub(r"/\*.*?\*/", "", src[start:src.index("void hand_kerr_geodesic_rhs_batch")],
+                  flags=re.S)
+    ops = 0
+    for e in re.findall(r"=\s*([^;]+);", body):
+        e = re.sub(r"\b[a-zA-Z_]\w*\[\d+\]", "X", e)
+        ops += len(re.findall(r"(?<=[\w\)\.])\s*[-+*/]\s*(?=[\w\(\.])", e))
+        ops += len(re.findall(r"\b(sin|cos|sqrt)\(", e))
+    return ops
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--n", type=int, default=100_000)
@@ -171,6 +186,10 @@ def main() -> None:
     print(f"  agreement: hand vs generated {scalar['hand_vs_generated']:.1e}; SoA scalar vs AoS "
           f"{scalar['soa_vs_aos']:.1e}; SoA libmvec vs AoS {vector['soa_vs_aos']:.1e} "
           "(relative to each state's largest component)")
+    import metricc
+    gen_ops = metricc.load(ROOT / "specs" / "kerr.toml", backend="numpy").kernel_info[
+        "geodesic_rhs"]["ops_after"]
+    print(f"  operations: generated {gen_ops}, hand-written {handwritten_ops()}")
     if scalar["hand_vs_generated"] > 1e-12:
         sys.exit("hand-written and generated kernels disagree")
     if args.numba:

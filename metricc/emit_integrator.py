@@ -41,7 +41,10 @@ def _step_function(name: str, P: str, tab: dict, n: int) -> str:
     lines.append(f"    for (i = 0; i < {n}; ++i) ynew[i] = y[i] + {_combo(tab['b'][:s - 1], n)};")
     lines.append(f"    {name}_rhs_form(form, ynew, params, k + {(s - 1) * n});")
     lines.append(f"    for (i = 0; i < {n}; ++i) {{")
-    lines.append("        const double sk = atol + rtol * fmax(fabs(y[i]), fabs(ynew[i]));")
+    # a comparison rather than fmax: fmax is a libm call when NaN semantics must be kept,
+    # and a NaN here makes the error non-finite (the step is rejected) either way
+    lines.append("        const double ay = fabs(y[i]), an = fabs(ynew[i]);")
+    lines.append("        const double sk = atol + rtol * (ay > an ? ay : an);")
     if tag == "dp5":
         lines.append(f"        const double e = {_combo(tab['e'], n)} / sk;")
         lines.append("        err += e * e;")

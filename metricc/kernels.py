@@ -124,7 +124,7 @@ def build_kernels(geo: Geometry, extra: tuple[str, ...] = ()) -> KernelSet:
     """
     spec = geo.spec
     dim = geo.dim
-    x, u, p = geo.coords, geo.velocity, geo.momentum
+    x, u = geo.coords, geo.velocity
     gsyms = geo.metric_symbols
     metric_defs = [(gsyms[i, j], geo.metric[i, j]) for i in range(dim) for j in range(i, dim)]
 

@@ -324,7 +324,6 @@ class MetricKernels:
         lead = y0.shape[:-1]
         n = 2 * self.dim
         flat = np.ascontiguousarray(y0.reshape(-1, n))
-        N = flat.shape[0]
         lam_end = float(lam_end)
         if not np.isfinite(lam_end):
             raise ValueError(f"lam_end must be finite, got {lam_end}")

@@ -426,8 +426,6 @@ class _Validator:
                 continue
             if used in ex.FUNCTIONS:
                 raise self.fail(f"{used!r} is a function: write {used}(...)", e.table, e.key, pos)
-            if e.table != "define" and used in self.data.get("define", {}):
-                pass  # unreachable: defines are in known
             hint = ""
             if used.startswith("d") and used[1:] in coords:
                 hint = (" (d<coordinate> is a differential in line_element and a velocity in "

@@ -11,7 +11,7 @@ import pytest
 
 import metricc
 from metricc.cli import main
-from tests.conftest import ROOT, SHIPPED, SPECS, needs_cc
+from tests.conftest import SHIPPED, SPECS, needs_cc
 
 
 def test_depfile_lists_outputs_spec_and_metricc(tmp_path):

@@ -13,7 +13,6 @@ import json
 import os
 import shutil
 import subprocess
-import sys
 import time
 import tokenize
 from pathlib import Path

@@ -315,13 +315,47 @@ def _c_body(ks: KernelSet, k: Kernel, soa: bool = False) -> list[str]:
             A, B = f"A{solve_index}", f"B{solve_index}"
             lines.append(f"double {A}[{n * n}] = {{{a}}};")
             lines.append(f"double {B}[{n * kk}] = {{{b}}};")
-            lines.append(f"{ks.name}_lin_solve({n}, {kk}, {A}, {B});")
+            if st.order is None:
+                lines.append(f"{ks.name}_lin_solve({n}, {kk}, {A}, {B});")
+            else:
+                lines += _static_solve(A, B, n, kk, st.order, solve_index)
             for c in range(kk):
                 for r in range(n):
                     lines.append(f"const double {st.results[c][r].name} = {B}[{r * kk + c}];")
             solve_index += 1
     for i, e in enumerate(k.outputs):
         lines.append(f"out[{at(i)}] = {pr(e)};")
+    return lines
+
+
+def _static_solve(A: str, B: str, n: int, k: int, order, tag: int) -> list[str]:
+    """Straight-line Gaussian elimination in a fixed pivot order (no branches, so the
+    structure-of-arrays loops vectorise). Works in place on A (n x n) and B (n x k), both
+    row-major; position i of the order is block row/column order[i]."""
+    p = list(order)
+
+    def a(i, j):
+        return f"{A}[{p[i] * n + p[j]}]"
+
+    def b(i, c):
+        return f"{B}[{p[i] * k + c}]"
+
+    lines = [f"/* fixed pivot order {tuple(p)}: chosen at build time, safe at the sample "
+             "points */"]
+    for c in range(n):
+        inv = f"pv{tag}_{c}"
+        lines.append(f"const double {inv} = 1.0 / {a(c, c)};")
+        for r in range(c + 1, n):
+            f = f"f{tag}_{c}_{r}"
+            lines.append(f"const double {f} = {a(r, c)} * {inv};")
+            for j in range(c + 1, n):
+                lines.append(f"{a(r, j)} -= {f} * {a(c, j)};")
+            for col in range(k):
+                lines.append(f"{b(r, col)} -= {f} * {b(c, col)};")
+    for i in range(n - 1, -1, -1):
+        for col in range(k):
+            terms = "".join(f" - {a(i, j)} * {b(j, col)}" for j in range(i + 1, n))
+            lines.append(f"{b(i, col)} = ({b(i, col)}{terms}) * pv{tag}_{i};")
     return lines
 
 
@@ -362,7 +396,7 @@ def c_source(ks: KernelSet, env=None, preamble: str = "") -> str:
     env = env or _environment()
     P = _c_prefix(ks)
     helpers = []
-    if any(isinstance(st, Solve) for k in ks.kernels for st in k.steps):
+    if any(isinstance(st, Solve) and st.order is None for k in ks.kernels for st in k.steps):
         helpers.append(_solve_helper(ks))
     functions = []
     kernels = {k.name: k for k in ks.kernels}

@@ -14,7 +14,8 @@ ever becomes an identifier in generated code.
 """
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
+from itertools import permutations
 from fractions import Fraction
 
 import numpy as np
@@ -65,6 +66,9 @@ class InverseBlock:
     inverse: sp.ImmutableMatrix | None
     cost_symbolic: int | None
     cost_numeric: int
+    # numeric blocks: a fixed elimination order (positions within the block) that needs no
+    # pivoting at run time, when one was found safe at the sample points (else None)
+    order: tuple[int, ...] | None = None
 
 
 @dataclass(frozen=True)
@@ -174,7 +178,11 @@ def derive(spec: Spec) -> Geometry:
     gsyms = sp.ImmutableMatrix(dim, dim, lambda i, j: sp.Symbol(f"g{min(i, j)}_{max(i, j)}",
                                                                  real=True))
     blocks = _inverse_blocks(metric, gsyms)
-    signature = _check_numerically(spec, metric, domain, coords, params)
+    signature, samples = _check_numerically(spec, metric, domain, coords, params)
+    if any(b.strategy == "numeric" for b in blocks):
+        samples = _pivot_samples(spec, metric, domain, coords, params, samples)
+        blocks = tuple(replace(b, order=static_pivot_order(samples[:, b.indices][:, :, b.indices]))
+                       if b.strategy == "numeric" else b for b in blocks)
     velocity, momentum = velocity_symbols(dim), momentum_symbols(dim)
     norm_symbol = sp.Symbol("nrm", real=True)
     state_env = dict(env)
@@ -373,8 +381,82 @@ def _inverse_blocks(metric: sp.ImmutableMatrix, gsyms: sp.ImmutableMatrix) -> tu
 
 
 # -- numerical checks of the metric --------------------------------------------------------
-def _check_numerically(spec: Spec, metric, domain, coords, params) -> tuple[int, int]:
-    """Check the metric at points inside the domain; return (negative, positive) counts."""
+PIVOT_RATIO_MIN = 0.05   # a static pivot must be >= this fraction of its column's largest
+
+
+def static_pivot_order(blocks: np.ndarray) -> tuple[int, ...] | None:
+    """An elimination order for the sampled matrices ``blocks`` (m, n, n) that is safe
+    without run-time pivoting, or None.
+
+    Symmetric orders (pivoting on the diagonal) are tried, n <= 5; an order is safe when at
+    every sample and every step the pivot is at least PIVOT_RATIO_MIN times the largest
+    entry of its column, so the straight-line solve grows errors no faster than a partially
+    pivoted one by more than that factor per step. Of the safe orders the best is taken.
+    """
+    m, n, _ = blocks.shape
+    if n > 5 or m == 0:
+        return None
+    best, best_ratio = None, 0.0
+    for order in permutations(range(n)):
+        a = blocks[:, list(order)][:, :, list(order)].copy()
+        worst = np.inf
+        for c in range(n):
+            col = np.abs(a[:, c:, c])
+            ratio = np.min(col[:, 0] / np.maximum(np.max(col, axis=1), 1e-300))
+            # a pivot whose sign differs between samples passes through zero somewhere in
+            # between (e.g. g_tt on an ergosurface): never safe, whatever the ratios
+            signs = np.sign(a[:, c, c])
+            if not (np.all(signs > 0) or np.all(signs < 0)):
+                ratio = 0.0
+            worst = min(worst, ratio)
+            if not worst >= PIVOT_RATIO_MIN:
+                break
+            f = a[:, c + 1:, c] / a[:, c, c][:, None]
+            a[:, c + 1:, c:] -= f[:, :, None] * a[:, c, c:][:, None, :]
+        if worst >= PIVOT_RATIO_MIN and worst > best_ratio:
+            best, best_ratio = tuple(order), worst
+    return best
+
+
+PIVOT_SAMPLES = 4000
+
+
+def _pivot_samples(spec: Spec, metric, domain, coords, params, first) -> np.ndarray:
+    """The metric (m, dim, dim) at many points inside the domain (moderate coordinates first,
+    where sign changes of entries such as g_tt live), plus the validation samples."""
+    dim = len(coords)
+    defaults = [v for _, v in spec.parameters]
+    entry_f = [[sp.lambdify([coords, params], metric[i, j], modules="numpy")
+                for j in range(dim)] for i in range(dim)]
+    domain_f = [sp.lambdify([coords, params], d, modules="numpy") for _, d in domain]
+
+    def evaluate(points):
+        cols = points.T
+        g = np.empty((len(points), dim, dim))
+        for i in range(dim):
+            for j in range(dim):
+                g[:, i, j] = np.broadcast_to(np.asarray(entry_f[i][j](cols, defaults),
+                                                        dtype=float), len(points))
+        return g
+
+    def accept(points):
+        with np.errstate(all="ignore"):
+            ok = np.ones(len(points), dtype=bool)
+            for f in domain_f:
+                val = np.broadcast_to(np.asarray(f(points.T, defaults), dtype=float), ok.shape)
+                ok &= np.isfinite(val) & (val > 0)
+            g = evaluate(points)
+            return ok & np.all(np.isfinite(g), axis=(1, 2))
+
+    pts = sample_inside(accept, dim, PIVOT_SAMPLES, seed=11, moderate_first=True)
+    with np.errstate(all="ignore"):
+        more = evaluate(pts) if len(pts) else np.empty((0, dim, dim))
+    return np.concatenate([first, more], axis=0)
+
+
+def _check_numerically(spec: Spec, metric, domain, coords, params):
+    """Check the metric at points inside the domain; return the (negative, positive)
+    eigenvalue counts and the metric at the sample points (m, dim, dim)."""
     dim = len(coords)
     defaults = [v for _, v in spec.parameters]
     metric_f = sp.lambdify([coords, params], metric, modules="numpy")
@@ -424,4 +506,4 @@ def _check_numerically(spec: Spec, metric, domain, coords, params) -> tuple[int,
                     None, "signature")
         if seen is None:
             seen = counts
-    return seen
+    return seen, g

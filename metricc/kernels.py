@@ -38,6 +38,7 @@ class Solve:
     matrix: tuple[sp.Expr, ...]
     rhs: tuple[tuple[sp.Expr, ...], ...]
     results: tuple[tuple[sp.Symbol, ...], ...]
+    order: tuple[int, ...] | None = None   # static elimination order (no pivoting), if safe
 
     @property
     def n(self) -> int:
@@ -206,7 +207,7 @@ def _apply_inverse(geo: Geometry, columns: list[list[sp.Expr]], tag: str):
             res_syms = tuple(tuple(sp.Symbol(f"s{tag}{bi}_{c}_{r}", real=True) for r in range(n))
                              for c in live)
             solves.append((matrix, tuple(tuple(columns[c][d] for d in idx) for c in live),
-                           res_syms))
+                           res_syms, block.order))
             for c, syms in zip(live, res_syms):
                 for r, a in enumerate(idx):
                     results[c][a] = syms[r]
@@ -473,11 +474,11 @@ def _make(name, doc, input_name, input_symbols, shape, outputs, pinned, solves=(
     outputs = [sp.sympify(o) for o in outputs]
     pinned = [(s, sp.sympify(e)) for s, e in pinned]
     solves = [(tuple(sp.sympify(m) for m in mat), tuple(tuple(sp.sympify(e) for e in col)
-               for col in rhs), res) for mat, rhs, res in solves]
+               for col in rhs), res, order) for mat, rhs, res, order in solves]
 
     # Keep only the definitions the outputs need (transitively).
     needed = _free(outputs)
-    for mat, rhs, res in solves:
+    for mat, rhs, res, _ in solves:
         needed |= _free(mat) | _free(e for col in rhs for e in col)
     pin_map = dict(pinned)
     live_pins = []
@@ -492,9 +493,9 @@ def _make(name, doc, input_name, input_symbols, shape, outputs, pinned, solves=(
     memo: dict = {}
     ops_before = (sum(count_ops(e, memo) for _, e in pinned)
                   + sum(count_ops(o, memo) for o in outputs)
-                  + sum(count_ops(e, memo) for mat, rhs, _ in solves for e in mat)
-                  + sum(count_ops(e, memo) for _, rhs, _ in solves for col in rhs for e in col)
-                  + sum(numeric_solve_cost(len(res[0]), len(res)) for _, _, res in solves))
+                  + sum(count_ops(e, memo) for mat, _, _, _ in solves for e in mat)
+                  + sum(count_ops(e, memo) for _, rhs, _, _ in solves for col in rhs for e in col)
+                  + sum(numeric_solve_cost(len(res[0]), len(res)) for _, _, res, _ in solves))
 
     # Fold pinned definitions that are constants or bare symbols into their uses.
     fold = {}
@@ -505,12 +506,12 @@ def _make(name, doc, input_name, input_symbols, shape, outputs, pinned, solves=(
     pinned = [(s, e.xreplace(fold)) for s, e in pinned if s not in fold]
     outputs = [o.xreplace(fold) for o in outputs]
     solves = [(tuple(m.xreplace(fold) for m in mat),
-               tuple(tuple(e.xreplace(fold) for e in col) for col in rhs), res)
-              for mat, rhs, res in solves]
+               tuple(tuple(e.xreplace(fold) for e in col) for col in rhs), res, order)
+              for mat, rhs, res, order in solves]
 
     # One flat list of expressions to optimise together.
     flat: list[sp.Expr] = [e for _, e in pinned] + outputs
-    for mat, rhs, _ in solves:
+    for mat, rhs, _, _ in solves:
         flat += list(mat) + [e for col in rhs for e in col]
     hoisted, flat = _hoist_powers(flat)
     # The hoisted definitions join the same CSE pass, so a named base shares its
@@ -529,14 +530,14 @@ def _make(name, doc, input_name, input_symbols, shape, outputs, pinned, solves=(
     outputs_red = reduced[pos:pos + len(outputs)]
     pos += len(outputs)
     solves_red = []
-    for mat, rhs, res in solves:
+    for mat, rhs, res, order in solves:
         m = tuple(reduced[pos:pos + len(mat)])
         pos += len(mat)
         cols = []
         for col in rhs:
             cols.append(tuple(reduced[pos:pos + len(col)]))
             pos += len(col)
-        solves_red.append(Solve(m, tuple(cols), res))
+        solves_red.append(Solve(m, tuple(cols), res, order))
 
     items: list = ([Assign(s, e) for s, e in replacements]
                    + [Assign(s, e) for s, e in hoisted_red]
@@ -617,7 +618,7 @@ def _forward_aliases(steps: list, outputs):
             if alias:
                 st = Solve(tuple(m.xreplace(alias) for m in st.matrix),
                            tuple(tuple(e.xreplace(alias) for e in col) for col in st.rhs),
-                           st.results)
+                           st.results, st.order)
             kept.append(st)
     return kept, [o.xreplace(alias) for o in outputs]
 

@@ -107,3 +107,49 @@ def test_dense_metrics_of_every_dimension(n):
     if k.backend == "c":
         knp = metricc.loads(text, backend="numpy")
         np.testing.assert_allclose(knp.christoffel(point), expect, rtol=1e-11, atol=1e-13)
+
+
+def test_static_pivot_order_avoids_pivots_that_change_sign():
+    from metricc.geometry import static_pivot_order
+    rng = np.random.default_rng(0)
+    # g_00 takes both signs across the samples (an ergosurface in between) while det g keeps
+    # its sign (g_01 = 2): g_00 may not be the first pivot, the positive spatial entries may,
+    # and after d_1 the Schur complement g_00 - 4/g_11 < 0 is a safe pivot.
+    g = np.zeros((50, 3, 3))
+    g[:, 0, 0] = rng.uniform(-1, 1, 50)
+    g[:, 1, 1] = g[:, 2, 2] = 1.0 + rng.uniform(0, 1, 50)
+    g[:, 0, 1] = g[:, 1, 0] = 2.0
+    order = static_pivot_order(g)
+    assert order is not None and order[0] != 0
+    # no safe order at all: every entry of a 1x1 block changes sign
+    assert static_pivot_order(rng.uniform(-1, 1, (20, 1, 1))) is None
+
+
+def test_kerr_schild_on_the_ergosurface():
+    """g_tt = 0 on the equatorial ergosurface r = 2M (x^2 + y^2 = 4 + a^2 at z = 0): the
+    build-time pivot order must not divide by it. Checked against numpy.linalg.solve."""
+    ks = build_kernels(derive(load_spec(SPECS / "kerr_schild.toml")))
+    block = ks.inverse_blocks[0]
+    assert block["strategy"] == "numeric"
+    k = metricc.load(SPECS / "kerr_schild.toml", backend="auto")
+    x = np.array([0.0, np.sqrt(4 + 0.81), 0.0, 0.0])
+    g = k.metric(x)
+    assert abs(g[0, 0]) < 1e-12
+    y = np.concatenate([x, [1.0, 0.1, 0.2, -0.1]])
+    rhs = k.geodesic_rhs(y)
+    gam = np.einsum("ad,dbc->abc", np.linalg.inv(g), 0.5 * (
+        np.einsum("bdc->dbc", _fd_metric_derivative(k, x)) + np.einsum("cdb->dbc",
+        _fd_metric_derivative(k, x)) - np.einsum("dbc->dbc", _fd_metric_derivative(k, x))))
+    expect = -np.einsum("abc,b,c->a", gam, y[4:], y[4:])
+    assert np.all(np.isfinite(rhs))
+    np.testing.assert_allclose(rhs[4:], expect, rtol=1e-6, atol=1e-9)
+
+
+def _fd_metric_derivative(k, x, h=1e-5):
+    """[c, a, b] = d_c g_ab by central differences (test helper)."""
+    out = []
+    for c in range(len(x)):
+        e = np.zeros_like(x)
+        e[c] = h
+        out.append((k.metric(x + e) - k.metric(x - e)) / (2 * h))
+    return np.array(out)

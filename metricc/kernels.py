@@ -18,7 +18,7 @@ from dataclasses import dataclass, field
 import sympy as sp
 
 from .geometry import Geometry, numeric_solve_cost
-from .printing import count_ops
+from .printing import as_expr, count_ops
 
 
 @dataclass(frozen=True)
@@ -78,12 +78,12 @@ class Kernel:
                 used |= st.expr.free_symbols
             else:
                 for e in st.matrix:
-                    used |= sp.sympify(e).free_symbols
+                    used |= as_expr(e).free_symbols
                 for col in st.rhs:
                     for e in col:
-                        used |= sp.sympify(e).free_symbols
+                        used |= as_expr(e).free_symbols
         for e in self.outputs:
-            used |= sp.sympify(e).free_symbols
+            used |= as_expr(e).free_symbols
         return used
 
 
@@ -273,7 +273,7 @@ def _pin(columns: list[list[sp.Expr]], prefix: str):
     for c, col in enumerate(columns):
         new = []
         for r, e in enumerate(col):
-            e = sp.sympify(e)
+            e = as_expr(e)
             if e.is_Atom:
                 new.append(e)
             else:
@@ -471,9 +471,9 @@ def _hamilton_jacobian(geo: Geometry, metric_defs) -> Kernel:
 # -- optimisation and scheduling -----------------------------------------------------------
 def _make(name, doc, input_name, input_symbols, shape, outputs, pinned, solves=()) -> Kernel:
     """Optimise one kernel: fold constants, hoist powers, CSE, schedule, drop dead code."""
-    outputs = [sp.sympify(o) for o in outputs]
-    pinned = [(s, sp.sympify(e)) for s, e in pinned]
-    solves = [(tuple(sp.sympify(m) for m in mat), tuple(tuple(sp.sympify(e) for e in col)
+    outputs = [as_expr(o) for o in outputs]
+    pinned = [(s, as_expr(e)) for s, e in pinned]
+    solves = [(tuple(as_expr(m) for m in mat), tuple(tuple(as_expr(e) for e in col)
                for col in rhs), res, order) for mat, rhs, res, order in solves]
 
     # Keep only the definitions the outputs need (transitively).
@@ -558,7 +558,7 @@ def _make(name, doc, input_name, input_symbols, shape, outputs, pinned, solves=(
 def _free(exprs) -> set:
     out: set = set()
     for e in exprs:
-        out |= sp.sympify(e).free_symbols
+        out |= as_expr(e).free_symbols
     return out
 
 

@@ -27,6 +27,17 @@ _NP_FUNCS = {
 _PREC_ADD, _PREC_MUL, _PREC_NEG, _PREC_ATOM = 10, 20, 25, 100
 
 
+def as_expr(e) -> sp.Basic:
+    """A sympy object from an internal value: sympy objects pass through, Python numbers are
+    wrapped. Text is refused: nothing here ever parses a string (spec text is parsed only by
+    metricc.expr)."""
+    if isinstance(e, sp.Basic):
+        return e
+    if isinstance(e, bool) or not isinstance(e, (int, float)):
+        raise TypeError(f"expected a sympy expression or a number, got {type(e).__name__}")
+    return sp.Integer(e) if isinstance(e, int) else sp.Float(e)
+
+
 def number_literal(value) -> str:
     """A double literal that round-trips: 2 -> '2.0', 1/3 -> '0.3333333333333333'."""
     f = float(value)
@@ -62,7 +73,7 @@ class Printer:
         self.lang = lang
 
     def __call__(self, expr) -> str:
-        return self._print(sp.sympify(expr) if not isinstance(expr, sp.Basic) else expr, 0)
+        return self._print(as_expr(expr), 0)
 
     def _wrap(self, text: str, prec: int, outer: int) -> str:
         return f"({text})" if prec < outer else text
@@ -176,8 +187,7 @@ def count_ops(e, memo: dict | None = None) -> int:
     Counts the expression as a tree (a repeated subexpression counts each time); ``memo``
     caches per distinct node, so the cost is linear in the expression's DAG size.
     """
-    if not isinstance(e, sp.Basic):
-        e = sp.sympify(e)
+    e = as_expr(e)
     if memo is None:
         memo = {}
     return _count(e, memo)

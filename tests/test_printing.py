@@ -44,3 +44,12 @@ def test_number_literals_round_trip():
         text = number_literal(value)
         assert float(text) == float(value)
         assert "." in text or "e" in text
+
+
+def test_internal_expressions_never_parse_text():
+    from metricc.printing import as_expr
+    assert as_expr(2) == sp.Integer(2) and as_expr(x) is x
+    with pytest.raises(TypeError):
+        as_expr("x + 1")
+    with pytest.raises(TypeError):
+        C("__import__('os')")

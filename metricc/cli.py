@@ -251,15 +251,17 @@ def _read_states(path: str):
 def cmd_integrate(args) -> int:
     import numpy as np
     from . import load
+    from .expr import ExprError, constant_value
     params = {}
     for item in args.param:
         name, sep, value = item.partition("=")
         try:
-            params[name.strip()] = float(value)
-        except ValueError:
+            params[name.strip()] = constant_value(value)
+        except ExprError:
             sep = ""
         if not sep:
-            raise BuildError(f"--param expects NAME=VALUE, got {item!r}")
+            raise BuildError(f"--param expects NAME=VALUE with a number (pi/2 and the like "
+                             f"work), got {item!r}")
     k = load(args.spec, backend=args.backend)
     y0 = _read_states(args.input)
     events = None if args.events is None else [e for e in args.events.split(",") if e]

@@ -18,6 +18,7 @@ Numbers are decimal literals (``2``, ``1.01``, ``6.67e-11``), kept exact as frac
 """
 from __future__ import annotations
 
+import math
 import re
 from dataclasses import dataclass
 from fractions import Fraction
@@ -273,3 +274,50 @@ def _edit_distance(a: str, b: str) -> int:
             cur.append(min(prev[j] + 1, cur[j - 1] + 1, prev[j - 1] + (ca != cb)))
         prev = cur
     return prev[-1]
+
+
+_MATH = {"sin": math.sin, "cos": math.cos, "tan": math.tan, "asin": math.asin,
+         "acos": math.acos, "atan": math.atan, "atan2": math.atan2, "sinh": math.sinh,
+         "cosh": math.cosh, "tanh": math.tanh, "asinh": math.asinh, "acosh": math.acosh,
+         "atanh": math.atanh, "exp": math.exp, "log": math.log, "sqrt": math.sqrt,
+         "abs": abs}
+
+
+def constant_value(text: str) -> float:
+    """The value of a constant expression in the spec language (``pi/2``, ``2*sqrt(2)``,
+    ``6.674e-11``): numbers, ``pi``, operators and functions, no other names. Evaluated in
+    floating point on the parsed tree; raises ExprError for a bad or non-finite value."""
+    tree = parse(text)
+
+    def value(n: Node) -> float:
+        k = n.kind
+        if k == "num":
+            return float(n.value)
+        if k == "name":
+            if n.value == "pi":
+                return math.pi
+            raise ExprError(f"unknown name {n.value!r} (only numbers and pi here)", n.pos)
+        if k == "call":
+            return _MATH[n.value](*[value(a) for a in n.args])
+        if k == "neg":
+            return -value(n.args[0])
+        a, b = value(n.args[0]), value(n.args[1])
+        if k == "add":
+            return a + b
+        if k == "sub":
+            return a - b
+        if k == "mul":
+            return a * b
+        if k == "div":
+            return a / b
+        return math.pow(a, b)
+
+    try:
+        result = value(tree)
+    except (ValueError, ZeroDivisionError, OverflowError) as exc:
+        if isinstance(exc, ExprError):
+            raise
+        raise ExprError(f"cannot evaluate {text!r}: {exc}", 0) from None
+    if not math.isfinite(result):
+        raise ExprError(f"{text!r} is not finite", 0)
+    return result

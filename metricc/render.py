@@ -707,29 +707,14 @@ def _stop_radius(k, at, ia, params):
 # ------------------------------------------------------------------------------------------
 # Command line
 # ------------------------------------------------------------------------------------------
-_PI_RE = re.compile(r"^\s*([+-]?(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][+-]?\d+)?\s*\*?\s*)?"
-                    r"(-)?pi\s*(?:/\s*((?:\d+(?:\.\d*)?|\.\d+)(?:[eE][+-]?\d+)?))?\s*$")
-
-
 def _number(text: str) -> float:
-    """A float, or a multiple of pi written as pi, 2*pi, pi/2, -pi/4, 1.5*pi/3."""
+    """A number given on the command line: any constant of the spec language (pi/2, -pi/4,
+    2*pi, 1.5e3, sqrt(2)), evaluated by metricc's own whitelist parser."""
+    from .expr import ExprError, constant_value
     try:
-        return float(text)
-    except ValueError:
-        pass
-    m = _PI_RE.match(text)
-    if not m:
-        raise ValueError(f"not a number: {text!r} (write a number or a multiple of pi such "
-                         "as pi/2)")
-    coef = m.group(1)
-    c = 1.0
-    if coef:
-        coef = coef.strip().rstrip("*").strip()
-        c = float(coef) if coef not in ("", "+", "-") else (-1.0 if coef == "-" else 1.0)
-    if m.group(2):
-        c = -c
-    den = float(m.group(3)) if m.group(3) else 1.0
-    return c * math.pi / den
+        return constant_value(text)
+    except ExprError as exc:
+        raise ValueError(f"not a number: {text!r} ({exc.message})") from None
 
 
 def _parse_size(text):

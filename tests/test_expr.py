@@ -359,3 +359,14 @@ def test_non_string_rejected(value):
 def test_non_language_constructs_rejected(text):
     with pytest.raises(ex.ExprError):
         ex.parse(text)
+
+
+def test_constant_value():
+    from metricc.expr import ExprError, constant_value
+    assert constant_value("pi/2") == pytest.approx(3.141592653589793 / 2)
+    assert constant_value("-pi/4") == pytest.approx(-3.141592653589793 / 4)
+    assert constant_value("2*sqrt(2)^2") == pytest.approx(4.0)
+    assert constant_value("1.5e3") == 1500.0
+    for bad in ("r", "1/0", "2^2^2^2^2^2", "sqrt(-1)", "__import__('os')", "pie"):
+        with pytest.raises(ExprError):
+            constant_value(bad)

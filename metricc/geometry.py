@@ -178,9 +178,10 @@ def derive(spec: Spec) -> Geometry:
     gsyms = sp.ImmutableMatrix(dim, dim, lambda i, j: sp.Symbol(f"g{min(i, j)}_{max(i, j)}",
                                                                  real=True))
     blocks = _inverse_blocks(metric, gsyms)
-    signature, samples = _check_numerically(spec, metric, domain, coords, params)
+    sampler = _Sampler(spec, metric, domain, coords, params)
+    signature, samples = _check_numerically(spec, sampler)
     if any(b.strategy == "numeric" for b in blocks):
-        samples = _pivot_samples(spec, metric, domain, coords, params, samples)
+        samples = _pivot_samples(sampler, samples)
         blocks = tuple(replace(b, order=static_pivot_order(samples[:, b.indices][:, :, b.indices]))
                        if b.strategy == "numeric" else b for b in blocks)
     velocity, momentum = velocity_symbols(dim), momentum_symbols(dim)
@@ -421,63 +422,52 @@ def static_pivot_order(blocks: np.ndarray) -> tuple[int, ...] | None:
 PIVOT_SAMPLES = 4000
 
 
-def _pivot_samples(spec: Spec, metric, domain, coords, params, first) -> np.ndarray:
-    """The metric (m, dim, dim) at many points inside the domain (moderate coordinates first,
-    where sign changes of entries such as g_tt live), plus the validation samples."""
-    dim = len(coords)
-    defaults = [v for _, v in spec.parameters]
-    entry_f = [[sp.lambdify([coords, params], metric[i, j], modules="numpy")
-                for j in range(dim)] for i in range(dim)]
-    domain_f = [sp.lambdify([coords, params], d, modules="numpy") for _, d in domain]
+class _Sampler:
+    """The metric and the domain test as NumPy functions (default parameters), vectorised
+    over points (m, dim). Built once per derivation and shared by every numerical check."""
 
-    def evaluate(points):
-        cols = points.T
-        g = np.empty((len(points), dim, dim))
-        for i in range(dim):
-            for j in range(dim):
-                g[:, i, j] = np.broadcast_to(np.asarray(entry_f[i][j](cols, defaults),
-                                                        dtype=float), len(points))
+    def __init__(self, spec: Spec, metric, domain, coords, params):
+        self.dim = len(coords)
+        self.defaults = [v for _, v in spec.parameters]
+        self.entries = [[sp.lambdify([coords, params], metric[i, j], modules="numpy")
+                         for j in range(self.dim)] for i in range(self.dim)]
+        self.domain = [sp.lambdify([coords, params], d, modules="numpy") for _, d in domain]
+
+    def metric(self, points) -> np.ndarray:
+        cols, n = points.T, len(points)
+        g = np.empty((n, self.dim, self.dim))
+        with np.errstate(all="ignore"):
+            for i in range(self.dim):
+                for j in range(self.dim):
+                    g[:, i, j] = np.broadcast_to(np.asarray(self.entries[i][j](cols, self.defaults),
+                                                            dtype=float), n)
         return g
 
-    def accept(points):
+    def accept(self, points) -> np.ndarray:
+        """Inside every [domain] expression (finite, > 0) with a finite metric."""
+        ok = np.ones(len(points), dtype=bool)
         with np.errstate(all="ignore"):
-            ok = np.ones(len(points), dtype=bool)
-            for f in domain_f:
-                val = np.broadcast_to(np.asarray(f(points.T, defaults), dtype=float), ok.shape)
+            for f in self.domain:
+                val = np.broadcast_to(np.asarray(f(points.T, self.defaults), dtype=float),
+                                      ok.shape)
                 ok &= np.isfinite(val) & (val > 0)
-            g = evaluate(points)
-            return ok & np.all(np.isfinite(g), axis=(1, 2))
+        return ok & np.all(np.isfinite(self.metric(points)), axis=(1, 2))
 
-    pts = sample_inside(accept, dim, PIVOT_SAMPLES, seed=11, moderate_first=True)
-    with np.errstate(all="ignore"):
-        more = evaluate(pts) if len(pts) else np.empty((0, dim, dim))
+
+def _pivot_samples(sampler: _Sampler, first) -> np.ndarray:
+    """The metric (m, dim, dim) at many points inside the domain (moderate coordinates first,
+    where sign changes of entries such as g_tt live), plus the validation samples."""
+    pts = sample_inside(sampler.accept, sampler.dim, PIVOT_SAMPLES, seed=11,
+                        moderate_first=True)
+    more = sampler.metric(pts) if len(pts) else np.empty((0, sampler.dim, sampler.dim))
     return np.concatenate([first, more], axis=0)
 
 
-def _check_numerically(spec: Spec, metric, domain, coords, params):
+def _check_numerically(spec: Spec, sampler: _Sampler):
     """Check the metric at points inside the domain; return the (negative, positive)
     eigenvalue counts and the metric at the sample points (m, dim, dim)."""
-    dim = len(coords)
-    defaults = [v for _, v in spec.parameters]
-    metric_f = sp.lambdify([coords, params], metric, modules="numpy")
-    domain_f = [sp.lambdify([coords, params], d, modules="numpy") for _, d in domain]
-
-    def metric_at(points):
-        return np.stack([np.asarray(metric_f(p, defaults), dtype=float) for p in points]) \
-            if len(points) else np.empty((0, dim, dim))
-
-    def accept(points):
-        ok = np.ones(len(points), dtype=bool)
-        cols = points.T
-        for f in domain_f:
-            val = np.broadcast_to(np.asarray(f(cols, defaults), dtype=float), ok.shape)
-            ok &= np.isfinite(val) & (val > 0)
-        idx = np.flatnonzero(ok)
-        if idx.size:
-            g = metric_at(points[idx])
-            ok[idx] = np.all(np.isfinite(g), axis=(1, 2))
-        return ok
-
+    dim = sampler.dim
+    accept = sampler.accept
     points = sample_inside(accept, dim, SAMPLE_POINTS)
     where = "[metric]" if spec.line_element is None else "line_element"
     table, key = (None, "line_element") if spec.line_element is not None else (None, "metric")
@@ -485,7 +475,7 @@ def _check_numerically(spec: Spec, metric, domain, coords, params):
         raise spec.error("could not find points inside [domain] where the metric is finite; "
                          "check the domain expressions (each must be > 0 inside the chart) and "
                          "the metric", table, key)
-    g = metric_at(points)
+    g = sampler.metric(points)
     seen = None
     for p, gp in zip(points, g):
         scale = np.prod(np.linalg.norm(gp, axis=1))

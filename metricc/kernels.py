@@ -72,18 +72,10 @@ class Kernel:
         return size
 
     def used_symbols(self) -> set[sp.Symbol]:
-        used: set[sp.Symbol] = set()
+        """Every symbol the steps and outputs read (inputs, parameters, temporaries)."""
+        used = _free(self.outputs)
         for st in self.steps:
-            if isinstance(st, Assign):
-                used |= st.expr.free_symbols
-            else:
-                for e in st.matrix:
-                    used |= as_expr(e).free_symbols
-                for col in st.rhs:
-                    for e in col:
-                        used |= as_expr(e).free_symbols
-        for e in self.outputs:
-            used |= as_expr(e).free_symbols
+            used |= _uses(st)
         return used
 
 

@@ -65,7 +65,8 @@ def test_check_passes_on_fresh_output_and_fails_on_stale(tmp_path, capsys):
 def test_show_text_matches_textbook_schwarzschild(capsys):
     assert main(["show", str(SPECS / "schwarzschild.toml")]) == 0
     text = capsys.readouterr().out
-    # Closed forms (e.g. Carroll 2004, eq. 5.15), in the printer's canonical spelling.
+    # Closed forms of the Schwarzschild Christoffel symbols (Carroll 2004, ch. 5; the equation
+    # number 5.15 is from memory), in the printer's canonical spelling.
     assert "Gamma^t_{t r} = M/(r*(-2*M + r))" in text
     assert "Gamma^theta_{phi phi} = -sin(theta)*cos(theta)" in text
     assert "Gamma^phi_{theta phi} = cos(theta)/sin(theta)" in text

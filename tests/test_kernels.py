@@ -126,7 +126,8 @@ def test_static_pivot_order_avoids_pivots_that_change_sign():
 
 
 def test_kerr_schild_on_the_ergosurface():
-    """g_tt = 0 on the equatorial ergosurface r = 2M (x^2 + y^2 = 4 + a^2 at z = 0): the
+    """g_tt = 0 on the equatorial ergosurface r = 2M (the static limit r = M + sqrt(M^2 -
+    a^2 cos^2 theta), a closed form of the Kerr metric; x^2 + y^2 = 4 + a^2 at z = 0): the
     build-time pivot order must not divide by it. Checked against numpy.linalg.solve."""
     ks = build_kernels(derive(load_spec(SPECS / "kerr_schild.toml")))
     block = ks.inverse_blocks[0]

@@ -80,7 +80,7 @@ def test_domain_helpers(kerr):
     x = np.array([[0.0, 5.0, 1.0, 0.0], [0.0, 1.0, 1.0, 0.0], [0.0, 5.0, 0.0, 0.0]])
     np.testing.assert_array_equal(kerr.inside(x), [True, False, False])
     assert kerr.domain_values(x).shape == (3, 2)
-    r_plus = 1 + np.sqrt(1 - 0.81)
+    r_plus = 1 + np.sqrt(1 - 0.81)  # Kerr outer horizon M + sqrt(M^2 - a^2) (closed form)
     np.testing.assert_allclose(kerr.event_values(x)[:, 0], x[:, 1] - 1.01 * r_plus)
 
 

@@ -15,7 +15,7 @@ from ._version import __version__
 from . import emit_integrator
 from .integrate import DOMAIN, DONE, EVENT_BASE, MAX_STEPS, NOT_FINITE, STEP_UNDERFLOW
 from .kernels import Assign, Kernel, KernelSet, Solve
-from .printing import Printer
+from .printing import Printer, is_library_call
 from .resources import template_dir
 
 INPUT_DOCS = {"x": "coordinates", "y": "state [x^mu, u^mu]", "z": "state [x^mu, p_mu]"}
@@ -279,33 +279,44 @@ def _c_body(ks: KernelSet, k: Kernel, soa: bool = False) -> list[str]:
     structure-of-arrays loop over state ``i`` of ``n`` (``in[k*n + i]``, params of state i at
     ``params + i*params_stride``).
     """
-    pr = Printer("c")
-    used = k.used_symbols()
-    lines = []
     arr = k.input_name
+    if soa:
+        return _c_statements(ks, k, lambda i: f"{arr}[{i} * n + i]",
+                             lambda j: f"params[{j} + i * params_stride]",
+                             lambda i: f"out[{i} * n + i]", unused_stride=True)
+    return _c_statements(ks, k, lambda i: f"{arr}[{i}]", lambda j: f"params[{j}]",
+                         lambda i: f"out[{i}]")
 
-    def at(idx: int) -> str:
-        return f"{idx} * n + i" if soa else f"{idx}"
 
+def _c_statements(ks: KernelSet, k: Kernel, load, load_param, store, steps=None, outputs=None,
+                  unused_stride: bool = False, mark_unused: bool = True) -> list[str]:
+    """Print a straight-line program: declarations of the inputs and parameters it reads
+    (``load(i)``, ``load_param(j)`` give the C lvalue of input i and parameter j), its
+    steps, and ``store(i) = output i``. steps/outputs default to the kernel's own; outputs
+    given as (index, expression) pairs. Unread arguments are cast to void (mark_unused)."""
+    pr = Printer("c")
+    steps = k.steps if steps is None else steps
+    outputs = list(enumerate(k.outputs)) if outputs is None else outputs
+    used = _c_used(steps, outputs)
+    lines = []
     loaded = False
     for i, s in enumerate(k.input_symbols):
         if s in used:
-            lines.append(f"const double {s.name} = {arr}[{at(i)}]; /* {_symbol_comment(ks, k, i)} */")
+            lines.append(f"const double {s.name} = {load(i)}; /* {_symbol_comment(ks, k, i)} */")
             loaded = True
-    if not loaded:
-        lines.append(f"(void){arr};")
+    if not loaded and mark_unused:
+        lines.append(f"(void){k.input_name};")
     pused = False
     for j, s in enumerate(ks.param_symbols):
         if s in used:
-            where = f"{j} + i * params_stride" if soa else f"{j}"
-            lines.append(f"const double {s.name} = params[{where}]; /* {ks.parameters[j][0]} */")
+            lines.append(f"const double {s.name} = {load_param(j)}; /* {ks.parameters[j][0]} */")
             pused = True
-    if not pused:
+    if not pused and mark_unused:
         lines.append("(void)params;")
-        if soa:
+        if unused_stride:
             lines.append("(void)params_stride;")
     solve_index = 0
-    for st in k.steps:
+    for st in steps:
         if isinstance(st, Assign):
             lines.append(f"const double {st.target.name} = {pr(st.expr)};")
         else:
@@ -323,9 +334,143 @@ def _c_body(ks: KernelSet, k: Kernel, soa: bool = False) -> list[str]:
                 for r in range(n):
                     lines.append(f"const double {st.results[c][r].name} = {B}[{r * kk + c}];")
             solve_index += 1
-    for i, e in enumerate(k.outputs):
-        lines.append(f"out[{at(i)}] = {pr(e)};")
+    for i, e in outputs:
+        lines.append(f"{store(i)} = {pr(e)};")
     return lines
+
+
+# -- tiled batch kernels -----------------------------------------------------------------------
+TILE = 16               # states per tile of the batch kernels
+TILE_OUT_MAX = 64       # outputs staged in a tile buffer (larger outputs are stored directly)
+
+
+@dataclass(frozen=True)
+class _Split:
+    """A kernel cut in two for tiled loops. The IR gives every library call (sin, exp, ...)
+    a step of its own (kernels._name_calls): ``call_steps`` are those steps and the steps
+    their arguments need; ``steps`` and ``outputs`` are the rest, reading each call's value
+    from its symbol (``calls``, in order)."""
+    calls: tuple
+    call_steps: tuple
+    steps: tuple
+    outputs: tuple
+
+
+def _split_calls(k: Kernel) -> _Split:
+    """Separate a kernel's library calls from its arithmetic.
+
+    The calls run in a scalar loop over a tile (with the steps their arguments need); the
+    arithmetic, now free of calls, runs in a loop the compiler vectorises. Both print the
+    single-state kernel's own statements, so the results are bit-identical.
+    """
+    call_targets = tuple(st.target for st in k.steps
+                         if isinstance(st, Assign) and is_library_call(st.expr))
+    outputs = tuple(enumerate(k.outputs))
+    rest = [st for st in k.steps if not (isinstance(st, Assign) and st.target in call_targets)]
+    steps = _live_steps(rest, _c_used((), outputs))
+    used_calls = _c_used(steps, outputs)
+    calls = tuple(t for t in call_targets if t in used_calls)
+    call_steps = _live_steps(list(k.steps), set(calls))
+    return _Split(calls, tuple(call_steps), tuple(steps), outputs)
+
+
+def _live_steps(steps: list, live: set) -> list:
+    """The steps that (transitively) produce the symbols in ``live``, in order."""
+    live = set(live)
+    kept = []
+    for st in reversed(steps):
+        targets = (st.target,) if isinstance(st, Assign) else tuple(
+            s for col in st.results for s in col)
+        if any(t in live for t in targets):
+            kept.append(st)
+            if isinstance(st, Assign):
+                live |= st.expr.free_symbols
+            else:
+                for e in st.matrix + tuple(x for col in st.rhs for x in col):
+                    live |= e.free_symbols
+    return list(reversed(kept))
+
+
+def _tiled_body(ks: KernelSet, k: Kernel, soa: bool) -> list[str]:
+    """A batch kernel over tiles of TILE states: library calls in a scalar loop, the
+    arithmetic in a loop the compiler vectorises (the per-state kernel finishes the last
+    partial tile). soa=False: y[n][size] (inputs and outputs are staged through tile
+    buffers); soa=True: y[size][n]."""
+    P = _c_prefix(ks)
+    split = _split_calls(k)
+    arr, n_in, n_out = k.input_name, len(k.input_symbols), k.output_size
+    npar = len(ks.parameters)
+    per_state = "params + i * params_stride" if npar else "params"
+    stage_out = not soa and n_out <= TILE_OUT_MAX
+    used = _c_used(k.steps, list(enumerate(k.outputs)))
+    lines = ["size_t i0, i, j;", f"const size_t full = n - n % {P}_TILE;"]
+    if soa and not any(s in used for s in k.input_symbols):
+        lines.append(f"(void){arr};")
+    if not any(s in used for s in ks.param_symbols):
+        lines += ["(void)params;", "(void)params_stride;"]
+    if soa:
+        inp = lambda c: f"{arr}[{c} * n + i0 + j]"       # noqa: E731
+    else:
+        inp = lambda c: f"tile_in[{c}][j]"                # noqa: E731
+    par = lambda q: f"params[{q} + (i0 + j) * params_stride]"  # noqa: E731
+    if stage_out:
+        out = lambda c: f"tile_out[{c}][j]"               # noqa: E731
+    elif soa:
+        out = lambda c: f"out[{c} * n + i0 + j]"          # noqa: E731
+    else:
+        out = lambda c: f"out[(i0 + j) * {n_out} + {c}]"  # noqa: E731
+    body = []
+    if not soa:
+        body.append(f"double tile_in[{n_in}][{P}_TILE];")
+    if split.calls:
+        body.append(f"double tile_calls[{len(split.calls)}][{P}_TILE];")
+    if stage_out:
+        body.append(f"double tile_out[{n_out}][{P}_TILE];")
+    if not soa:
+        read = [c for c, s in enumerate(k.input_symbols) if s in used] or [0]
+        body += [f"for (j = 0; j < {P}_TILE; ++j) {{"]
+        body += [f"    tile_in[{c}][j] = {arr}[(i0 + j) * {n_in} + {c}];" for c in read]
+        body += ["}"]
+    if split.calls:
+        call_lines = _c_statements(ks, k, inp, par, lambda s: f"tile_calls[{s}][j]",
+                                   steps=split.call_steps, outputs=list(enumerate(split.calls)),
+                                   mark_unused=False)
+        body += [f"for (j = 0; j < {P}_TILE; ++j) {{"] + ["    " + x for x in call_lines] + ["}"]
+    arith = [f"const double {sym.name} = tile_calls[{s}][j];"
+             for s, sym in enumerate(split.calls)]
+    arith += _c_statements(ks, k, inp, par, out, steps=split.steps,
+                           outputs=list(split.outputs), mark_unused=False)
+    body += [f"{P}_SIMD_LOOP", f"for (j = 0; j < {P}_TILE; ++j) {{"]
+    body += ["    " + x for x in arith] + ["}"]
+    if stage_out:
+        body += [f"for (j = 0; j < {P}_TILE; ++j) {{"]
+        body += [f"    out[(i0 + j) * {n_out} + {c}] = tile_out[{c}][j];" for c in range(n_out)]
+        body += ["}"]
+    lines += [f"for (i0 = 0; i0 < full; i0 += {P}_TILE) {{"]
+    lines += ["    " + x for x in body] + ["}"]
+    if soa:
+        # the last partial tile, state by state through the same statements
+        rest = _c_statements(ks, k, lambda c: f"{arr}[{c} * n + i]",
+                             lambda q: f"params[{q} + i * params_stride]",
+                             lambda c: f"out[{c} * n + i]", mark_unused=False)
+        lines += ["for (i = full; i < n; ++i) {"] + ["    " + x for x in rest] + ["}"]
+    else:
+        lines += ["for (i = full; i < n; ++i)",
+                  f"    {ks.name}_{k.name}({arr} + i * {n_in}, {per_state}, out + i * {n_out});"]
+    return lines
+
+
+def _c_used(steps, outputs) -> set:
+    used = set()
+    for _, e in outputs:
+        used |= e.free_symbols
+    for st in steps:
+        if isinstance(st, Assign):
+            used |= st.expr.free_symbols
+        else:
+            for e in st.matrix + tuple(x for col in st.rhs for x in col):
+                used |= e.free_symbols
+    return used
 
 
 def _static_solve(A: str, B: str, n: int, k: int, order, tag: int) -> list[str]:
@@ -360,23 +505,33 @@ def _static_solve(A: str, B: str, n: int, k: int, order, tag: int) -> list[str]:
 
 
 def vector_math_block(ks: KernelSet) -> str:
-    """Declarations that let GCC vectorise the *_soa loops with glibc's libmvec."""
+    """Loop set-up for the batch kernels: tile size, vector-width clones and, on request,
+    glibc's vector math (libmvec)."""
     P = _c_prefix(ks)
     simd = '__attribute__((__simd__("notinbranch"))) extern'
-    return f"""/* Structure-of-arrays entry points (NAME_<kernel>_soa) are loops the compiler can
- * vectorise. Build with -D{P}_VECTOR_MATH -O3 -fopenmp-simd -fno-builtin-sin -fno-builtin-cos
- * and link -lmvec to use glibc's vector sin, cos, exp, log and pow (documented to be within
- * 4 ulp of the scalar functions), with one clone per x86-64 vector width chosen at load
- * time. Without it, the *_soa functions compute exactly what the scalar kernels compute. */
+    return f"""/* Batch kernels (NAME_<kernel>_batch over y[n][size], NAME_<kernel>_soa over y[size][n])
+ * work on tiles of {P}_TILE states: the library calls (sin, exp, ...) of a tile run first, in
+ * a plain loop, then the arithmetic runs in a loop the compiler vectorises. Each state's
+ * results are bit-identical to the single-state kernel's. With GCC on x86-64 Linux each batch
+ * kernel is compiled once per vector width (AVX-512, AVX2, baseline) and the widest the
+ * processor supports is picked at load time; define {P}_NO_CLONES to build one version.
+ * Build with -D{P}_VECTOR_MATH -O3 -fopenmp-simd -fno-builtin-sin -fno-builtin-cos and link
+ * -lmvec to vectorise the calls too, with glibc's vector sin, cos, exp, log and pow
+ * (documented to be within 4 ulp of the scalar functions). */
+#ifndef {P}_TILE
+#define {P}_TILE {TILE}
+#endif
+#if defined(__GNUC__) && !defined(__clang__) && defined(__x86_64__) && defined(__linux__) && !defined(__CUDACC__) && !defined({P}_NO_CLONES)
+#define {P}_CLONES __attribute__((target_clones("avx512f", "avx2", "default")))
+#else
+#define {P}_CLONES
+#endif
 #if defined({P}_VECTOR_MATH) && defined(__GNUC__) && defined(__x86_64__) && !defined(__CUDACC__) && !defined(__clang__)
 {simd} double sin(double);
 {simd} double cos(double);
 {simd} double exp(double);
 {simd} double log(double);
 {simd} double pow(double, double);
-#define {P}_CLONES __attribute__((target_clones("avx512f", "avx2", "default")))
-#else
-#define {P}_CLONES
 #endif
 #if defined(_OPENMP) || defined({P}_VECTOR_MATH)
 #define {P}_SIMD_LOOP _Pragma("omp simd")
@@ -404,19 +559,10 @@ def c_source(ks: KernelSet, env=None, preamble: str = "") -> str:
     for name, single, batch in c_prototypes(ks, f"{P}_RESTRICT"):
         k = kernels[name]
         functions.append({"prototype": single, "body": _c_body(ks, k)})
-        n_in, n_out = len(k.input_symbols), k.output_size
-        pexpr = "params + i * params_stride" if npar else "params"
-        body = ["size_t i;"]
-        if not npar:
-            body.append("(void)params_stride;")
-        body += ["for (i = 0; i < n; ++i)",
-                 f"    {ks.name}_{name}({k.input_name} + i * {n_in}, {pexpr}, out + i * {n_out});"]
-        functions.append({"prototype": batch, "body": body})
-        soa_body = ["size_t i;", f"{P}_SIMD_LOOP", "for (i = 0; i < n; ++i) {"]
-        soa_body += ["    " + line for line in _c_body(ks, k, soa=True)]
-        soa_body.append("}")
+        functions.append({"prototype": f"{P}_CLONES " + batch,
+                          "body": _tiled_body(ks, k, soa=False)})
         functions.append({"prototype": f"{P}_CLONES " + soa_prototype(ks, k, f"{P}_RESTRICT"),
-                          "body": soa_body})
+                          "body": _tiled_body(ks, k, soa=True)})
     for form in ("geodesic", "hamilton"):
         functions.append({"prototype": gsl_prototype(ks, form),
                           "body": ["(void)t;",

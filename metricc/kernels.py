@@ -18,7 +18,7 @@ from dataclasses import dataclass, field
 import sympy as sp
 
 from .geometry import Geometry, numeric_solve_cost
-from .printing import as_expr, count_ops
+from .printing import as_expr, count_ops, is_library_call, library_calls
 
 
 @dataclass(frozen=True)
@@ -181,7 +181,16 @@ def _apply_inverse(geo: Geometry, columns: list[list[sp.Expr]], tag: str):
     solves = []
     for bi, block in enumerate(geo.blocks):
         idx = block.indices
-        if block.strategy == "symbolic":
+        if block.strategy == "symbolic" and len(idx) == 1:
+            # A diagonal entry: divide by the entry's own expression rather than its symbol,
+            # so the reciprocal is shared with the metric's other uses of the same base
+            # (1/(Sigma/Delta) is Delta*(1/Sigma)) and common factors cancel term by term
+            # (r^2 sin^2 / (r^2 sin^2 theta)) instead of costing a division each.
+            (a,) = idx
+            recip = 1 / geo.metric[a, a]
+            for c, col in enumerate(columns):
+                results[c][a] = _cheaper_product(col[a], recip)
+        elif block.strategy == "symbolic":
             for c, col in enumerate(columns):
                 for a_local, a in enumerate(idx):
                     results[c][a] = sp.Add(*[block.inverse[a_local, d_local] * col[d]
@@ -204,6 +213,16 @@ def _apply_inverse(geo: Geometry, columns: list[list[sp.Expr]], tag: str):
                 for r, a in enumerate(idx):
                     results[c][a] = syms[r]
     return solves, results
+
+
+def _cheaper_product(value: sp.Expr, factor: sp.Expr) -> sp.Expr:
+    """value * factor, distributed over value's terms when that costs fewer operations
+    (factors that cancel against a term's own powers disappear; sympy combines them)."""
+    plain = as_expr(value) * factor
+    if not as_expr(value).is_Add:
+        return plain
+    spread = sp.Add(*[term * factor for term in value.args])
+    return spread if count_ops(spread) < count_ops(plain) else plain
 
 
 def _inverse_kernel(geo: Geometry, metric_defs) -> Kernel:
@@ -505,12 +524,15 @@ def _make(name, doc, input_name, input_symbols, shape, outputs, pinned, solves=(
     flat: list[sp.Expr] = [e for _, e in pinned] + outputs
     for mat, rhs, _, _ in solves:
         flat += list(mat) + [e for col in rhs for e in col]
-    hoisted, flat = _hoist_powers(flat)
+    hoisted, flat = _hoist_powers(_canonical_signs(flat))
+    hoisted, flat = _power_ladders(hoisted, flat)
     # The hoisted definitions join the same CSE pass, so a named base shares its
     # subexpressions with every other use.
     flat = [e for _, e in hoisted] + flat
     replacements, reduced = sp.cse(flat, symbols=sp.numbered_symbols("t", real=True),
                                    order="canonical", list=True)
+    replacements = [(sym, _factor_common(e)) for sym, e in replacements]
+    reduced = [_factor_common(e) for e in reduced]
     hoisted_red = [(s, e) for (s, _), e in zip(hoisted, reduced)]
     reduced = reduced[len(hoisted):]
 
@@ -536,6 +558,7 @@ def _make(name, doc, input_name, input_symbols, shape, outputs, pinned, solves=(
                    + [Assign(s, e) for s, e in pinned_red] + solves_red)
     steps = _schedule(items, set(input_symbols))
     steps, outputs_red = _forward_aliases(steps, outputs_red)
+    steps, outputs_red = _name_calls(steps, outputs_red)
     steps = _drop_dead(steps, outputs_red)
     ops_after = sum(count_ops(st.expr) if isinstance(st, Assign) else
                     numeric_solve_cost(st.n, len(st.results)) + sum(count_ops(e) for e in st.matrix)
@@ -615,6 +638,44 @@ def _forward_aliases(steps: list, outputs):
     return kept, [o.xreplace(alias) for o in outputs]
 
 
+def _name_calls(steps: list, outputs):
+    """Give every library call (sin, exp, pow, ...; see printing.is_library_call) a step of
+    its own, ``lcK = call``, right before the step that first uses it.
+
+    Backends can then run the calls of many states in one loop and the arithmetic in
+    another (emit's tiled batch kernels) while printing every expression exactly as the
+    single-state kernel does, so both give bit-identical results."""
+    names: dict = {}
+    counter = iter(range(10 ** 9))
+    out_steps: list = []
+
+    def lift(e):
+        """e with its calls (innermost first) replaced by named symbols."""
+        calls = [c for c in library_calls([e]) if c not in names]
+        for c in reversed(calls):        # preorder lists outer calls first
+            arg = c.xreplace(names)
+            sym = sp.Symbol(f"lc{next(counter)}", real=True)
+            out_steps.append(Assign(sym, arg))
+            names[c] = sym
+        return e.xreplace(names)
+
+    for st in steps:
+        if isinstance(st, Assign):
+            if is_library_call(st.expr):
+                # already a step of its own: only its arguments may need naming
+                inner = st.expr.func(*[lift(a) for a in st.expr.args])
+                out_steps.append(Assign(st.target, inner))
+                names[st.expr] = st.target
+            else:
+                out_steps.append(Assign(st.target, lift(st.expr)))
+        else:
+            mat = tuple(lift(m) for m in st.matrix)
+            rhs = tuple(tuple(lift(e) for e in col) for col in st.rhs)
+            out_steps.append(Solve(mat, rhs, st.results, st.order))
+    outputs = [lift(o) for o in outputs]
+    return out_steps, outputs
+
+
 def _drop_dead(steps: list, outputs) -> list:
     live = _free(outputs)
     kept = []
@@ -623,6 +684,87 @@ def _drop_dead(steps: list, outputs) -> list:
             kept.append(st)
             live |= _uses(st)
     return list(reversed(kept))
+
+
+def _factor_common(e: sp.Expr) -> sp.Expr:
+    """Pull factors shared by the terms of a sum out of it (q*a - q*b -> q*(a - b)), at
+    every level, when that saves operations; CSE leaves such sums alone."""
+    if e.is_Atom:
+        return e
+    factored = sp.factor_terms(e)
+    return factored if count_ops(factored) < count_ops(e) else e
+
+
+def _power_ladders(defs: list[tuple[sp.Symbol, sp.Expr]], exprs: list[sp.Expr]):
+    """Share the squarings between the integer powers of one symbol.
+
+    b^3 and b^4 in one kernel would print as b*b*b and b*b*b*b (5 multiplications); naming
+    b2 = b*b (and b4 = b2*b2, ...) turns every b^n into a product of the binary ladder, so
+    the same powers cost 1 + 1 + 1. Only symbols raised to some |n| >= 3, or to two different
+    |n| >= 2, get a ladder. Returns (defs + ladder definitions, rewritten defs and exprs).
+    """
+    everything = [e for _, e in defs] + list(exprs)
+    powers: dict = {}
+    for e in everything:
+        for node in sp.preorder_traversal(e):
+            if node.is_Pow and node.base.is_Symbol and node.exp.is_Integer and abs(node.exp) >= 2:
+                powers.setdefault(node.base, set()).add(abs(int(node.exp)))
+    bases = sorted((b for b, ns in powers.items() if max(ns) >= 3),
+                   key=sp.default_sort_key)
+    if not bases:
+        return defs, exprs
+    new_defs: list = []
+    rungs: dict = {}
+    for i, b in enumerate(bases):
+        prev, k = b, 1
+        while 2 * k <= max(powers[b]):
+            sym = sp.Symbol(f"w{i}_{2 * k}", real=True)
+            new_defs.append((sym, sp.Pow(prev, 2)))
+            rungs[b, 2 * k] = prev = sym
+            k *= 2
+
+    def ladder(b, n):
+        factors, k = [], 1
+        while n:
+            if n & 1:
+                factors.append(b if k == 1 else rungs[b, k])
+            n >>= 1
+            k *= 2
+        return sp.Mul(*factors)
+
+    ladder_bases = set(bases)
+    mapping = {}
+    for e in everything:
+        for node in sp.preorder_traversal(e):
+            if node.is_Pow and node.base in ladder_bases and node.exp.is_Integer \
+                    and abs(node.exp) >= 2:
+                n = int(node.exp)
+                mapping[node] = ladder(node.base, n) if n > 0 else 1 / ladder(node.base, -n)
+    rewritten = [e.xreplace(mapping) for e in everything]
+    out_defs = [(s, e) for (s, _), e in zip(defs, rewritten[:len(defs)])] + new_defs
+    return out_defs, rewritten[len(defs):]
+
+
+def _canonical_signs(exprs: list[sp.Expr]) -> list[sp.Expr]:
+    """Write integer powers of a sum with the sum's sign canonical: (2M/r - 1)^-1 becomes
+    -(1 - 2M/r)^-1, so a base and its negative share one reciprocal (or one named base)."""
+    memo: dict = {}
+
+    def walk(e):
+        if e.is_Atom or not e.args:
+            return e
+        hit = memo.get(e)
+        if hit is not None:
+            return hit
+        args = [walk(a) for a in e.args]
+        out = e.func(*args) if args != list(e.args) else e
+        if (out.is_Pow and out.base.is_Add and out.exp.is_Integer
+                and out.base.could_extract_minus_sign()):
+            out = (-1) ** int(out.exp) * sp.Pow(-out.base, out.exp)
+        memo[e] = out
+        return out
+
+    return [walk(e) for e in exprs]
 
 
 def _hoist_powers(exprs: list[sp.Expr]) -> tuple[list[tuple[sp.Symbol, sp.Expr]], list[sp.Expr]]:

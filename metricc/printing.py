@@ -181,6 +181,33 @@ class Printer:
         return f"{table[fname]}({args})"
 
 
+# Printed as libm calls a compiler cannot vectorise without a vector math library; sqrt and
+# fabs are single instructions and vectorise everywhere.
+_SCALAR_CALLS = frozenset(_C_FUNCS) - {"Abs"}
+
+
+def is_library_call(e) -> bool:
+    """True when the printers write ``e`` as a libm call other than sqrt or fabs (sin, exp,
+    pow with a non-integer exponent, ...): the calls that keep a loop scalar."""
+    if e.is_Pow:
+        exp = e.exp
+        if exp.is_Integer:
+            return abs(int(exp)) > MAX_UNROLLED_POWER
+        return not (exp.is_Rational and exp.q == 2)
+    return isinstance(e, sp.Function) and type(e).__name__ in _SCALAR_CALLS
+
+
+def library_calls(exprs) -> list:
+    """The distinct library-call nodes (see is_library_call) of ``exprs``, in first-seen
+    preorder; a call nested in another call's argument is listed too."""
+    seen: dict = {}
+    for e in exprs:
+        for node in sp.preorder_traversal(as_expr(e)):
+            if not node.is_Atom and node not in seen and is_library_call(node):
+                seen[node] = None
+    return list(seen)
+
+
 def count_ops(e, memo: dict | None = None) -> int:
     """Floating-point operations of ``e`` as the printers write it (calls count as one).
 

@@ -196,7 +196,9 @@ def depfile_text(results, out: Path) -> str:
 
 def _summary(r, out: Path, written: list[str]) -> None:
     ks = r.kernels
-    blocks = " | ".join(f"{','.join(b['coordinates'])}: {b['strategy']}" for b in ks.inverse_blocks)
+    blocks = " | ".join(f"{','.join(b['coordinates'])}: {b['strategy']}"
+                        + (" rank-one update of a constant metric" if b.get("form") == "rank-one"
+                           else "") for b in ks.inverse_blocks)
     print(f"{ks.name}: {r.spec.path} -> {out}{os.sep} ({r.seconds:.2f} s)")
     print(f"  {ks.summary}")
     print(f"  dimension {ks.dim}, parameters: {', '.join(p for p, _ in ks.parameters) or 'none'};"

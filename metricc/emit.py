@@ -435,7 +435,9 @@ def _tiled_body(ks: KernelSet, k: Kernel, soa: bool) -> list[str]:
         call_lines = _c_statements(ks, k, inp, par, lambda s: f"tile_calls[{s}][j]",
                                    steps=split.call_steps, outputs=list(enumerate(split.calls)),
                                    mark_unused=False)
-        body += [f"for (j = 0; j < {P}_TILE; ++j) {{"] + ["    " + x for x in call_lines] + ["}"]
+        # a plain loop unless the calls have vector versions (vector-math builds)
+        body += [f"{P}_CALL_LOOP", f"for (j = 0; j < {P}_TILE; ++j) {{"]
+        body += ["    " + x for x in call_lines] + ["}"]
     arith = [f"const double {sym.name} = tile_calls[{s}][j];"
              for s, sym in enumerate(split.calls)]
     arith += _c_statements(ks, k, inp, par, out, steps=split.steps,
@@ -537,6 +539,11 @@ def vector_math_block(ks: KernelSet) -> str:
 #define {P}_SIMD_LOOP _Pragma("omp simd")
 #else
 #define {P}_SIMD_LOOP
+#endif
+#if defined({P}_VECTOR_MATH)
+#define {P}_CALL_LOOP _Pragma("omp simd")
+#else
+#define {P}_CALL_LOOP
 #endif
 """
 

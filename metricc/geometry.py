@@ -69,6 +69,38 @@ class InverseBlock:
     # numeric blocks: a fixed elimination order (positions within the block) that needs no
     # pivoting at run time, when one was found safe at the sample points (else None)
     order: tuple[int, ...] | None = None
+    # how a closed form was found: "adjugate" (over the determinant) or "rank-one" (the
+    # whole metric is a constant matrix plus a rank-one term: see RankOneForm)
+    form: str = ""
+
+
+@dataclass(frozen=True)
+class RankOneForm:
+    """A metric of the form g = C + s l l^T (the Kerr-Schild form, for example): C a constant
+    non-singular matrix, s a scalar function, l a covector with l[pivot] = 1.
+
+    Then g^{-1} = C^{-1} - s m m^T / (1 + s l.m) with m = C^{-1} l (Sherman-Morrison), and
+    d_k g_ab = d_k s l_a l_b + s (d_k l_a l_b + l_a d_k l_b), so the right-hand sides need
+    O(dim^2) operations instead of O(dim^3). dscale[k] = d_k s; dvector[k][a] = d_k l_a.
+    """
+    constant: sp.ImmutableMatrix
+    constant_inverse: sp.ImmutableMatrix
+    scale: sp.Expr
+    vector: tuple[sp.Expr, ...]
+    pivot: int
+    dscale: tuple[sp.Expr, ...]
+    dvector: tuple[tuple[sp.Expr, ...], ...]
+
+    def apply_inverse(self, column: list[sp.Expr]) -> list[sp.Expr]:
+        """g^{-1} w for a column w (dim expressions)."""
+        n = len(column)
+        ci = self.constant_inverse
+        m = [sp.Add(*[ci[a, b] * self.vector[b] for b in range(n)]) for a in range(n)]
+        lm = sp.Add(*[self.vector[a] * m[a] for a in range(n)])
+        mw = sp.Add(*[m[a] * column[a] for a in range(n)])
+        factor = self.scale * mw / (1 + self.scale * lm)
+        return [sp.Add(*[ci[a, b] * column[b] for b in range(n)]) - m[a] * factor
+                for a in range(n)]
 
 
 @dataclass(frozen=True)
@@ -98,6 +130,7 @@ class Geometry:
     signature: tuple[int, int]
     invariants: tuple[tuple[str, sp.Expr], ...] = ()
     norm_symbol: sp.Symbol = sp.Symbol("nrm", real=True)
+    rank_one: RankOneForm | None = None
 
     @property
     def dim(self) -> int:
@@ -122,9 +155,21 @@ class Geometry:
         """w_d = Gamma_{d bc} u^b u^c, so that du^a/dlambda = -g^{ad} w_d.
 
         Uses Gamma_{d bc} u^b u^c = (d_b g_dc - 1/2 d_d g_bc) u^b u^c, which needs one
-        derivative term fewer than the textbook form.
+        derivative term fewer than the textbook form. For a metric in rank-one form
+        (g = C + s l l^T) the same sum is w_d = L l_d Ds + s L Dl_d + s l_d DLam
+        - 1/2 L^2 d_d s - s L Lam_d, with L = l.u, Lam_k = d_k l.u and D = u^b d_b.
         """
         n, u, dg = self.dim, self.velocity, self.dmetric
+        if self.rank_one is not None:
+            ro = self.rank_one
+            s, l, ds, dl = ro.scale, ro.vector, ro.dscale, ro.dvector
+            L = sp.Add(*[l[a] * u[a] for a in range(n)])
+            lam = [sp.Add(*[dl[k][a] * u[a] for a in range(n)]) for k in range(n)]
+            Ds = sp.Add(*[u[b] * ds[b] for b in range(n)])
+            Dl = [sp.Add(*[u[b] * dl[b][d] for b in range(n)]) for d in range(n)]
+            Dlam = sp.Add(*[u[b] * lam[b] for b in range(n)])
+            return tuple(L * l[d] * Ds + s * L * Dl[d] + s * l[d] * Dlam - L**2 * ds[d] / 2
+                         - s * L * lam[d] for d in range(n))
         out = []
         for d in range(n):
             total = sp.S.Zero
@@ -138,9 +183,16 @@ class Geometry:
     def hamilton_force(self) -> tuple[sp.Expr, ...]:
         """dp_k/dlambda = -1/2 d_k g^{ij} p_i p_j = +1/2 d_k g_{ij} u^i u^j with u = g^{-1} p.
 
-        The right form avoids differentiating the inverse metric.
+        The right form avoids differentiating the inverse metric. For a metric in rank-one
+        form (g = C + s l l^T): 1/2 d_k s (l.u)^2 + s (l.u) (d_k l.u).
         """
         n, u, dg = self.dim, self.velocity, self.dmetric
+        if self.rank_one is not None:
+            ro = self.rank_one
+            L = sp.Add(*[ro.vector[a] * u[a] for a in range(n)])
+            return tuple(ro.dscale[k] * L**2 / 2
+                         + ro.scale * L * sp.Add(*[ro.dvector[k][a] * u[a] for a in range(n)])
+                         for k in range(n))
         return tuple(sp.Add(*[dg[k][i, j] * u[i] * u[j] for i in range(n) for j in range(n)]) / 2
                      for k in range(n))
 
@@ -180,6 +232,17 @@ def derive(spec: Spec) -> Geometry:
     blocks = _inverse_blocks(metric, gsyms)
     sampler = _Sampler(spec, metric, domain, coords, params)
     signature, samples = _check_numerically(spec, sampler)
+    rank_one = None
+    if any(len(b.indices) >= 3 for b in blocks):
+        rank_one = _rank_one_form(metric, coords, params, sampler)
+        if rank_one is not None and _rank_one_cost(rank_one) < sum(
+                min(c for c in (b.cost_symbolic, b.cost_numeric) if c is not None)
+                for b in blocks):
+            blocks = (InverseBlock(tuple(range(dim)), "symbolic", None,
+                                   _rank_one_cost(rank_one),
+                                   weighted_numeric_cost(dim, nrhs=1), form="rank-one"),)
+        else:
+            rank_one = None
     if any(b.strategy == "numeric" for b in blocks):
         samples = _pivot_samples(sampler, samples)
         blocks = tuple(replace(b, order=static_pivot_order(samples[:, b.indices][:, :, b.indices]))
@@ -196,7 +259,7 @@ def derive(spec: Spec) -> Geometry:
                     momentum=momentum, metric=metric, metric_symbols=gsyms,
                     dmetric=dmetric, blocks=blocks, ignorable=ignorable, domain=domain,
                     events=events, signature=signature, invariants=invariants,
-                    norm_symbol=norm_symbol)
+                    norm_symbol=norm_symbol, rank_one=rank_one)
 
 
 # -- expression trees -> sympy -------------------------------------------------------------
@@ -375,10 +438,88 @@ def _inverse_blocks(metric: sp.ImmutableMatrix, gsyms: sp.ImmutableMatrix) -> tu
             sym_cost += DIVISION_WEIGHT + (n * n if n > 1 else 0) + n * (2 * n - 1)
             sym_inverse = sp.ImmutableMatrix(n, n, lambda a, b: adj[a, b] / det)
         if sym_cost is not None and sym_cost <= numeric:
-            blocks.append(InverseBlock(idx, "symbolic", sym_inverse, sym_cost, numeric))
+            blocks.append(InverseBlock(idx, "symbolic", sym_inverse, sym_cost, numeric,
+                                       form="adjugate"))
         else:
             blocks.append(InverseBlock(idx, "numeric", None, sym_cost, numeric))
     return tuple(blocks)
+
+
+# -- rank-one (Kerr-Schild) form -------------------------------------------------------------
+RANK_ONE_TOLERANCE = 1e-9   # |g - (C + s l l^T)| relative to |g| at the sample points
+RANK_ONE_SAMPLES = 400
+
+
+def _rank_one_form(metric: sp.ImmutableMatrix, coords, params, sampler: "_Sampler"):
+    """g = C + s l l^T with C the coordinate-free part of each entry, if that holds.
+
+    C must be non-singular; s is the rank-one part's diagonal entry at a pivot p and
+    l_a = D_ap / D_pp, which must simplify (sympy cancels common factors on its own, as in
+    F*l_x / F = l_x); the cheapest pivot is taken. The form is accepted only if it
+    reproduces the metric at sample points inside the domain. Returns RankOneForm or None.
+    """
+    from .printing import count_ops
+    n = metric.shape[0]
+    const = sp.ImmutableMatrix(n, n, lambda i, j: sp.Add(*[
+        t for t in sp.Add.make_args(metric[i, j]) if not t.has(*coords)]))
+    rest = metric - const
+    if const.has(*coords) or all(e == 0 for e in rest):
+        return None
+    cdet = const.det(method="berkowitz")
+    if cdet == 0:
+        return None
+    candidates = []
+    for p in range(n):
+        s = rest[p, p]
+        if s == 0:
+            continue
+        # powsimp (top level only, cheap) cancels what Mul does not: exp(A)*exp(-A)
+        vector = tuple(sp.S.One if a == p else sp.powsimp(rest[a, p] / s, deep=False)
+                       for a in range(n))
+        if any(count_ops(vector[a]) > count_ops(rest[a, p]) for a in range(n) if a != p):
+            continue    # the division did not cancel: l would divide by s
+        candidates.append((sum(count_ops(e) for e in vector) + count_ops(s), p, s, vector))
+    if not candidates:
+        return None
+    points = sample_inside(sampler.accept, sampler.dim, RANK_ONE_SAMPLES, seed=13,
+                           moderate_first=True)
+    if len(points) == 0:
+        return None
+    g = sampler.metric(points)
+    defaults = sampler.defaults
+    c_num = np.array(sp.lambdify([params], const, modules="numpy")(defaults), dtype=float)
+    if not np.all(np.isfinite(c_num)) or abs(np.linalg.det(c_num)) < 1e-12:
+        return None
+    for _, p, s, vector in sorted(candidates, key=lambda c: (c[0], c[1])):
+        f = sp.lambdify([coords, params], [s, *vector], modules="numpy")
+        with np.errstate(all="ignore"):
+            vals = [np.broadcast_to(np.asarray(v, dtype=float), (len(points),))
+                    for v in f(points.T, defaults)]
+        s_num, l_num = vals[0], np.stack(vals[1:], axis=-1)
+        model = c_num + s_num[:, None, None] * l_num[:, :, None] * l_num[:, None, :]
+        scale = np.max(np.abs(g), axis=(1, 2))
+        if not (np.all(np.isfinite(model))
+                and np.all(np.max(np.abs(model - g), axis=(1, 2)) <= RANK_ONE_TOLERANCE * scale)):
+            continue
+        inverse = sp.ImmutableMatrix(const.inv(method="LU"))
+        return RankOneForm(
+            constant=const, constant_inverse=inverse, scale=s, vector=vector, pivot=p,
+            dscale=tuple(sp.diff(s, x) for x in coords),
+            dvector=tuple(tuple(sp.diff(e, x) for e in vector) for x in coords))
+    return None
+
+
+def _rank_one_cost(form: RankOneForm) -> int:
+    """Weighted operations of g^{-1} w in rank-one form (s, l, w as atoms), as for blocks."""
+    from .printing import count_ops
+    n = len(form.vector)
+    w = [sp.Symbol(f"w{a}") for a in range(n)]
+    dummy = RankOneForm(form.constant, form.constant_inverse, sp.Symbol("s"),
+                        tuple(sp.S.One if a == form.pivot else sp.Symbol(f"l{a}")
+                              for a in range(n)), form.pivot, (), ())
+    repl, reduced = sp.cse(dummy.apply_inverse(w), order="canonical")
+    ops = sum(count_ops(e) for _, e in repl) + sum(count_ops(e) for e in reduced)
+    return ops + DIVISION_WEIGHT - 1
 
 
 # -- numerical checks of the metric --------------------------------------------------------

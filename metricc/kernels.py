@@ -154,7 +154,7 @@ def build_kernels(geo: Geometry, extra: tuple[str, ...] = ()) -> KernelSet:
         kernels.append(_make("stops", "the events, then the domain expressions", "x", x,
                              (len(stops),), stops, []))
     blocks = tuple({"coordinates": [spec.coordinates[i] for i in b.indices],
-                    "strategy": b.strategy, "cost_symbolic": b.cost_symbolic,
+                    "strategy": b.strategy, "form": b.form, "cost_symbolic": b.cost_symbolic,
                     "cost_numeric": b.cost_numeric} for b in geo.blocks)
     return KernelSet(name=spec.name, summary=spec.summary, spec_sha256=spec.sha256,
                      invariants=tuple(n for n, _ in geo.invariants),
@@ -177,6 +177,9 @@ def _metric_kernel(geo: Geometry, metric_defs) -> Kernel:
 def _apply_inverse(geo: Geometry, columns: list[list[sp.Expr]], tag: str):
     """g^{-1} times each column (lists of dim expressions) -> (solves, result columns)."""
     dim = geo.dim
+    if geo.rank_one is not None:
+        # g = C + s l l^T: Sherman-Morrison, in the expressions of s and l
+        return [], [geo.rank_one.apply_inverse(list(col)) for col in columns]
     results = [[None] * dim for _ in columns]
     solves = []
     for bi, block in enumerate(geo.blocks):
@@ -488,9 +491,10 @@ def _make(name, doc, input_name, input_symbols, shape, outputs, pinned, solves=(
                for col in rhs), res, order) for mat, rhs, res, order in solves]
 
     # Keep only the definitions the outputs need (transitively).
-    needed = _free(outputs)
+    # (large trees before CSE: symbols are collected over the DAG, not the tree)
+    needed = _symbols_in(outputs)
     for mat, rhs, res, _ in solves:
-        needed |= _free(mat) | _free(e for col in rhs for e in col)
+        needed |= _symbols_in(list(mat) + [e for col in rhs for e in col])
     pin_map = dict(pinned)
     live_pins = []
     frontier = set(needed)
@@ -498,7 +502,7 @@ def _make(name, doc, input_name, input_symbols, shape, outputs, pinned, solves=(
         s = frontier.pop()
         if s in pin_map and s not in live_pins:
             live_pins.append(s)
-            frontier |= pin_map[s].free_symbols
+            frontier |= _symbols_in([pin_map[s]])
     pinned = [(s, e) for s, e in pinned if s in live_pins]
 
     memo: dict = {}
@@ -531,8 +535,14 @@ def _make(name, doc, input_name, input_symbols, shape, outputs, pinned, solves=(
     flat = [e for _, e in hoisted] + flat
     replacements, reduced = sp.cse(flat, symbols=sp.numbered_symbols("t", real=True),
                                    order="canonical", list=True)
-    replacements = [(sym, _factor_common(e)) for sym, e in replacements]
-    reduced = [_factor_common(e) for e in reduced]
+    # Factoring after CSE exposes new common sums (q*a - q*b and b - a both become a - b):
+    # a second, cheap CSE pass over the now small statements shares them.
+    nrep = len(replacements)
+    again = [_factor_common(e) for _, e in replacements] + [_factor_common(e) for e in reduced]
+    extra, again = sp.cse(again, symbols=sp.numbered_symbols("t", start=nrep, real=True),
+                          order="canonical", list=True)
+    replacements = extra + [(sym, e) for (sym, _), e in zip(replacements, again[:nrep])]
+    reduced = again[nrep:]
     hoisted_red = [(s, e) for (s, _), e in zip(hoisted, reduced)]
     reduced = reduced[len(hoisted):]
 
@@ -686,6 +696,36 @@ def _drop_dead(steps: list, outputs) -> list:
     return list(reversed(kept))
 
 
+def _symbols_in(exprs) -> set:
+    """The symbols of ``exprs`` (free_symbols, found in one walk of the shared DAG)."""
+    seen: set = set()
+    found: set = set()
+    stack = list(exprs)
+    while stack:
+        node = stack.pop()
+        if node in seen:
+            continue
+        seen.add(node)
+        if node.is_Symbol:
+            found.add(node)
+        elif not node.is_Atom:
+            stack.extend(node.args)
+    return found
+
+
+def _distinct_nodes(exprs) -> set:
+    """Every distinct compound node of ``exprs`` (a walk of the DAG, not of the tree)."""
+    seen: set = set()
+    stack = list(exprs)
+    while stack:
+        node = stack.pop()
+        if node.is_Atom or node in seen:
+            continue
+        seen.add(node)
+        stack.extend(node.args)
+    return seen
+
+
 def _factor_common(e: sp.Expr) -> sp.Expr:
     """Pull factors shared by the terms of a sum out of it (q*a - q*b -> q*(a - b)), at
     every level, when that saves operations; CSE leaves such sums alone."""
@@ -705,10 +745,10 @@ def _power_ladders(defs: list[tuple[sp.Symbol, sp.Expr]], exprs: list[sp.Expr]):
     """
     everything = [e for _, e in defs] + list(exprs)
     powers: dict = {}
-    for e in everything:
-        for node in sp.preorder_traversal(e):
-            if node.is_Pow and node.base.is_Symbol and node.exp.is_Integer and abs(node.exp) >= 2:
-                powers.setdefault(node.base, set()).add(abs(int(node.exp)))
+    nodes = _distinct_nodes(everything)
+    for node in nodes:
+        if node.is_Pow and node.base.is_Symbol and node.exp.is_Integer and abs(node.exp) >= 2:
+            powers.setdefault(node.base, set()).add(abs(int(node.exp)))
     bases = sorted((b for b, ns in powers.items() if max(ns) >= 3),
                    key=sp.default_sort_key)
     if not bases:
@@ -734,12 +774,11 @@ def _power_ladders(defs: list[tuple[sp.Symbol, sp.Expr]], exprs: list[sp.Expr]):
 
     ladder_bases = set(bases)
     mapping = {}
-    for e in everything:
-        for node in sp.preorder_traversal(e):
-            if node.is_Pow and node.base in ladder_bases and node.exp.is_Integer \
-                    and abs(node.exp) >= 2:
-                n = int(node.exp)
-                mapping[node] = ladder(node.base, n) if n > 0 else 1 / ladder(node.base, -n)
+    for node in nodes:
+        if node.is_Pow and node.base in ladder_bases and node.exp.is_Integer \
+                and abs(node.exp) >= 2:
+            n = int(node.exp)
+            mapping[node] = ladder(node.base, n) if n > 0 else 1 / ladder(node.base, -n)
     rewritten = [e.xreplace(mapping) for e in everything]
     out_defs = [(s, e) for (s, _), e in zip(defs, rewritten[:len(defs)])] + new_defs
     return out_defs, rewritten[len(defs):]

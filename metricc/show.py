@@ -96,8 +96,9 @@ def components(geo: Geometry, what: str) -> list[tuple[str, tuple, sp.Expr]]:
 
 
 def _inverse(geo: Geometry):
-    """The inverse metric in coordinates if every block has a closed form, else None."""
-    if any(b.strategy != "symbolic" for b in geo.blocks):
+    """The inverse metric in coordinates if every block has a closed form in the metric's
+    entries, else None (numeric blocks; the rank-one form, whose expansion is no help)."""
+    if geo.rank_one is not None or any(b.strategy != "symbolic" for b in geo.blocks):
         return None
     dim = geo.dim
     inv = sp.zeros(dim, dim)
@@ -107,6 +108,13 @@ def _inverse(geo: Geometry):
             for id_, d in enumerate(b.indices):
                 inv[a, d] = b.inverse[ia, id_].xreplace(subs)
     return inv
+
+
+def _inverse_note(geo: Geometry) -> str:
+    if geo.rank_one is not None:
+        return ("a rank-one update of a constant metric C + s l l^T, inverted in closed form "
+                "as C^-1 - s m m^T/(1 + s l.m), m = C^-1 l")
+    return "solved numerically at run time (dense block)"
 
 
 def _text(e: sp.Expr) -> str:
@@ -134,14 +142,15 @@ def render(geo: Geometry, parts: list[str], fmt: str = "text") -> str:
     for part in parts:
         comps = components(geo, part)
         title = _TITLES[part]
+        how = _inverse_note(geo)
         if part == "inverse_metric" and _inverse(geo) is None:
-            title += ": solved numerically at run time (dense block), not shown"
+            title += f": {how}, not shown"
         if part == "geodesic_rhs" and comps and comps[0][0] == "w":
             title = ("geodesic equation: g_{ab} d^2 x^b/dlambda^2 = -w_a with w_a = "
-                     "Gamma_{a bc} u^b u^c shown (the inverse metric is solved numerically)")
+                     f"Gamma_{{a bc}} u^b u^c shown (the inverse metric is {how})")
         if part == "christoffel" and comps and comps[0][0] == "Gamma_first":
             title = ("Christoffel symbols of the first kind Gamma_{d bc} (the inverse metric is "
-                     "solved numerically at run time)")
+                     f"{how})")
         if fmt == "latex":
             lines.append(f"% {title}")
             lines.append("\\begin{align*}")

@@ -82,8 +82,14 @@ def test_show_latex(capsys):
     assert "g^{\\theta \\theta} &= \\frac{1}{R^{2}}" in text
 
 
-def test_show_dense_metric_uses_first_kind(capsys):
+def test_show_dense_metric_uses_first_kind(capsys, tmp_path):
     assert main(["show", str(SPECS / "kerr_schild.toml"), "--parts", "inverse_metric,christoffel"]) == 0
+    text = capsys.readouterr().out
+    assert "rank-one update" in text and "Gamma_{t t x}" in text
+    from tests.test_kernels import KERR_SCHILD_RESCALED
+    spec = tmp_path / "ks_rescaled.toml"
+    spec.write_text(KERR_SCHILD_RESCALED)
+    assert main(["show", str(spec), "--parts", "inverse_metric,christoffel"]) == 0
     text = capsys.readouterr().out
     assert "solved numerically" in text and "Gamma_{t t x}" in text
 

@@ -22,8 +22,10 @@ def test_inverse_strategy_by_structure(kernelsets):
     assert kernelsets["kerr"].inverse_strategy == "symbolic"
     assert [b["coordinates"] for b in kernelsets["kerr"].inverse_blocks] == [
         ["t", "phi"], ["r"], ["theta"]]
-    # Kerr-Schild: every entry non-zero, the 4x4 is solved numerically at run time.
-    assert kernelsets["kerr_schild"].inverse_strategy == "numeric"
+    # Kerr-Schild: every entry non-zero, but g = eta + F l l: a rank-one update of a
+    # constant metric, inverted in closed form (Sherman-Morrison).
+    assert kernelsets["kerr_schild"].inverse_strategy == "symbolic"
+    assert [b["form"] for b in kernelsets["kerr_schild"].inverse_blocks] == ["rank-one"]
     assert kernelsets["schwarzschild"].inverse_strategy == "symbolic"
 
 
@@ -125,14 +127,30 @@ def test_static_pivot_order_avoids_pivots_that_change_sign():
     assert static_pivot_order(rng.uniform(-1, 1, (20, 1, 1))) is None
 
 
+KERR_SCHILD_RESCALED = (SPECS / "kerr_schild.toml").read_text().replace(
+    'name = "kerr_schild"', 'name = "ks_rescaled"').replace(
+    "[define]", '[define]\nW = "1 + z^2/100"').replace(
+    # every entry times W: no constant part is left, so no rank-one form: a numeric solve
+    't.t = "-1 + F"', 't.t = "W*(-1 + F)"').replace('t.x = "F*lx"', 't.x = "W*F*lx"').replace(
+    't.y = "F*ly"', 't.y = "W*F*ly"').replace('t.z = "F*lz"', 't.z = "W*F*lz"').replace(
+    'x.x = "1 + F*lx^2"', 'x.x = "W*(1 + F*lx^2)"').replace(
+    'x.y = "F*lx*ly"', 'x.y = "W*F*lx*ly"').replace('x.z = "F*lx*lz"', 'x.z = "W*F*lx*lz"').replace(
+    'y.y = "1 + F*ly^2"', 'y.y = "W*(1 + F*ly^2)"').replace(
+    'y.z = "F*ly*lz"', 'y.z = "W*F*ly*lz"').replace('z.z = "1 + F*lz^2"', 'z.z = "W*(1 + F*lz^2)"')
+
+
 def test_kerr_schild_on_the_ergosurface():
     """g_tt = 0 on the equatorial ergosurface r = 2M (the static limit r = M + sqrt(M^2 -
     a^2 cos^2 theta), a closed form of the Kerr metric; x^2 + y^2 = 4 + a^2 at z = 0): the
-    build-time pivot order must not divide by it. Checked against numpy.linalg.solve."""
-    ks = build_kernels(derive(load_spec(SPECS / "kerr_schild.toml")))
+    build-time pivot order of a numeric solve must not divide by it. A conformally rescaled
+    Kerr-Schild metric (dense, no rank-one form) takes the numeric path. Checked against
+    numpy.linalg.solve."""
+    assert KERR_SCHILD_RESCALED.count("W*") == 10
+    from metricc.spec import parse_spec
+    ks = build_kernels(derive(parse_spec(KERR_SCHILD_RESCALED)))
     block = ks.inverse_blocks[0]
     assert block["strategy"] == "numeric"
-    k = metricc.load(SPECS / "kerr_schild.toml", backend="auto")
+    k = metricc.loads(KERR_SCHILD_RESCALED, backend="auto")
     x = np.array([0.0, np.sqrt(4 + 0.81), 0.0, 0.0])
     g = k.metric(x)
     assert abs(g[0, 0]) < 1e-12
@@ -144,6 +162,85 @@ def test_kerr_schild_on_the_ergosurface():
     expect = -np.einsum("abc,b,c->a", gam, y[4:], y[4:])
     assert np.all(np.isfinite(rhs))
     np.testing.assert_allclose(rhs[4:], expect, rtol=1e-6, atol=1e-9)
+
+
+# A constant, non-diagonal C plus s l l^T with a non-null l (so the Sherman-Morrison
+# denominator 1 + s l.C^-1.l is not 1), and the same with a second rank-one term, which
+# must not be mistaken for the rank-one form.
+_RANK_ONE = """
+name = "{name}"
+coordinates = ["t", "x", "y", "z"]
+[parameters]
+m = 0.7
+[define]
+s = "m*exp(-(x^2 + y^2 + z^2)/4)"
+lx = "sin(x)/2"
+ly = "y/3"
+lz = "cos(z)/4"
+k2 = "{second}"
+[metric]
+t.t = "-1 + s"
+t.x = "0.5 + s*lx"
+t.y = "s*ly"
+t.z = "s*lz"
+x.x = "1 + s*lx^2 + k2"
+x.y = "s*lx*ly + k2"
+x.z = "s*lx*lz"
+y.y = "1 + s*ly^2 + k2"
+y.z = "s*ly*lz"
+z.z = "2 + s*lz^2"
+"""
+
+
+def _rank_one_reference(point, velocity, second: bool):
+    """Gamma^a_bc u^b u^c and the Hamiltonian force from sympy's derivatives of the metric
+    written out independently, with numpy's inverse (no metricc code involved)."""
+    t, x, y, z = sp.symbols("t x y z", real=True)
+    m = sp.Rational(7, 10)
+    s = m * sp.exp(-(x**2 + y**2 + z**2) / 4)
+    l = [1, sp.sin(x) / 2, y / 3, sp.cos(z) / 4]
+    C = sp.Matrix([[-1, sp.Rational(1, 2), 0, 0], [sp.Rational(1, 2), 1, 0, 0],
+                   [0, 0, 1, 0], [0, 0, 0, 2]])
+    g = C + s * sp.Matrix(4, 4, lambda a, b: l[a] * l[b])
+    if second:
+        k2 = sp.sin(t + x) ** 2 / 5
+        g += sp.Matrix(4, 4, lambda a, b: k2 if a in (1, 2) and b in (1, 2) else 0)
+    xs = (t, x, y, z)
+    at = dict(zip(xs, point))
+    gnum = np.array(g.subs(at).evalf(), dtype=float)
+    dg = np.array([[[float(sp.diff(g[i, j], xs[c]).subs(at)) for c in range(4)]
+                    for j in range(4)] for i in range(4)])       # [i, j, c] = d_c g_ij
+    first = 0.5 * (dg.transpose(0, 2, 1) + dg - dg.transpose(2, 0, 1))
+    gamma = np.einsum("ad,dbc->abc", np.linalg.inv(gnum), first)
+    u = np.asarray(velocity)
+    force = 0.5 * np.einsum("ijk,i,j->k", dg, u, u)
+    return gnum, -np.einsum("abc,b,c->a", gamma, u, u), force
+
+
+@pytest.mark.parametrize("second", [False, True])
+def test_rank_one_form_against_a_direct_inverse(second):
+    text = _RANK_ONE.format(name="rank_two" if second else "rank_one",
+                            second="sin(t + x)^2/5" if second else "0")
+    from metricc.spec import parse_spec
+    geo = derive(parse_spec(text))
+    assert (geo.rank_one is not None) == (not second)
+    rng = np.random.default_rng(11)
+    for backend in ("auto", "numpy"):
+        k = metricc.loads(text, backend=backend)
+        for _ in range(3):
+            point = rng.uniform(-1.5, 1.5, 4)
+            u = rng.normal(size=4)
+            g, acc, force = _rank_one_reference(point, u, second)
+            y = np.concatenate([point, u])
+            np.testing.assert_allclose(k.metric(point), g, rtol=1e-13, atol=1e-14)
+            np.testing.assert_allclose(k.inverse_metric(point), np.linalg.inv(g), rtol=1e-11,
+                                       atol=1e-12)
+            np.testing.assert_allclose(k.geodesic_rhs(y)[4:], acc, rtol=1e-10, atol=1e-12)
+            # Hamiltonian form at p = g u: dx/dlambda = u, dp/dlambda = 1/2 d_k g_ab u^a u^b
+            z = np.concatenate([point, g @ u])
+            out = k.hamilton_rhs(z)
+            np.testing.assert_allclose(out[:4], u, rtol=1e-11, atol=1e-12)
+            np.testing.assert_allclose(out[4:], force, rtol=1e-10, atol=1e-12)
 
 
 def _fd_metric_derivative(k, x, h=1e-5):

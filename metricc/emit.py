@@ -341,6 +341,9 @@ def _c_statements(ks: KernelSet, k: Kernel, load, load_param, store, steps=None,
 
 # -- tiled batch kernels -----------------------------------------------------------------------
 TILE = 16               # states per tile of the batch kernels
+# Kernels whose batch entry points run in tiles (cloned per vector width): the right-hand
+# sides, which integrators and ray tracers call millions of times.
+TILED_KERNELS = ("geodesic_rhs", "hamilton_rhs")
 TILE_OUT_MAX = 64       # outputs staged in a tile buffer (larger outputs are stored directly)
 
 
@@ -391,74 +394,99 @@ def _live_steps(steps: list, live: set) -> list:
     return list(reversed(kept))
 
 
-def _tiled_body(ks: KernelSet, k: Kernel, soa: bool) -> list[str]:
-    """A batch kernel over tiles of TILE states: library calls in a scalar loop, the
-    arithmetic in a loop the compiler vectorises (the per-state kernel finishes the last
-    partial tile). soa=False: y[n][size] (inputs and outputs are staged through tile
-    buffers); soa=True: y[size][n]."""
+def tile_prototype(ks: KernelSet, k: Kernel) -> str:
+    P = _c_prefix(ks)
+    r = f"{P}_RESTRICT"
+    return (f"static {P}_CLONES void {ks.name}_{k.name}_tile(const double *{r} in, "
+            f"size_t in_stride, const double *{r} params, size_t params_stride, "
+            f"double *{r} out, size_t out_stride)")
+
+
+def _tile_body(ks: KernelSet, k: Kernel) -> list[str]:
+    """One tile of {P}_TILE states, structure of arrays: input c of state j at
+    in[c*in_stride + j], its parameters at params + j*params_stride, output c at
+    out[c*out_stride + j]. The library calls run in their own loop; the arithmetic, free of
+    calls, in a loop the compiler vectorises."""
     P = _c_prefix(ks)
     split = _split_calls(k)
-    arr, n_in, n_out = k.input_name, len(k.input_symbols), k.output_size
-    npar = len(ks.parameters)
-    per_state = "params + i * params_stride" if npar else "params"
-    stage_out = not soa and n_out <= TILE_OUT_MAX
+    inp = lambda c: f"in[{c} * in_stride + j]"                 # noqa: E731
+    par = lambda q: f"params[{q} + j * params_stride]"         # noqa: E731
+    # results go to a local buffer first: stores through out with a run-time stride could
+    # overlap as far as the compiler knows, which would keep the loop scalar
+    res = lambda c: f"tile_res[{c}][j]"                       # noqa: E731
     used = _c_used(k.steps, list(enumerate(k.outputs)))
-    lines = ["size_t i0, i, j;", f"const size_t full = n - n % {P}_TILE;"]
-    if soa and not any(s in used for s in k.input_symbols):
-        lines.append(f"(void){arr};")
+    lines = ["size_t j;", f"double tile_res[{k.output_size}][{P}_TILE];"]
+    if not any(s in used for s in k.input_symbols):
+        lines += ["(void)in;", "(void)in_stride;"]
     if not any(s in used for s in ks.param_symbols):
         lines += ["(void)params;", "(void)params_stride;"]
-    if soa:
-        inp = lambda c: f"{arr}[{c} * n + i0 + j]"       # noqa: E731
-    else:
-        inp = lambda c: f"tile_in[{c}][j]"                # noqa: E731
-    par = lambda q: f"params[{q} + (i0 + j) * params_stride]"  # noqa: E731
-    if stage_out:
-        out = lambda c: f"tile_out[{c}][j]"               # noqa: E731
-    elif soa:
-        out = lambda c: f"out[{c} * n + i0 + j]"          # noqa: E731
-    else:
-        out = lambda c: f"out[(i0 + j) * {n_out} + {c}]"  # noqa: E731
-    body = []
-    if not soa:
-        body.append(f"double tile_in[{n_in}][{P}_TILE];")
     if split.calls:
-        body.append(f"double tile_calls[{len(split.calls)}][{P}_TILE];")
-    if stage_out:
-        body.append(f"double tile_out[{n_out}][{P}_TILE];")
-    if not soa:
-        read = [c for c, s in enumerate(k.input_symbols) if s in used] or [0]
-        body += [f"for (j = 0; j < {P}_TILE; ++j) {{"]
-        body += [f"    tile_in[{c}][j] = {arr}[(i0 + j) * {n_in} + {c}];" for c in read]
-        body += ["}"]
-    if split.calls:
-        call_lines = _c_statements(ks, k, inp, par, lambda s: f"tile_calls[{s}][j]",
-                                   steps=split.call_steps, outputs=list(enumerate(split.calls)),
-                                   mark_unused=False)
+        lines.append(f"double tile_calls[{len(split.calls)}][{P}_TILE];")
+        calls = _c_statements(ks, k, inp, par, lambda s: f"tile_calls[{s}][j]",
+                              steps=split.call_steps, outputs=list(enumerate(split.calls)),
+                              mark_unused=False)
         # a plain loop unless the calls have vector versions (vector-math builds)
-        body += [f"{P}_CALL_LOOP", f"for (j = 0; j < {P}_TILE; ++j) {{"]
-        body += ["    " + x for x in call_lines] + ["}"]
+        lines += [f"{P}_CALL_LOOP", f"for (j = 0; j < {P}_TILE; ++j) {{"]
+        lines += ["    " + x for x in calls] + ["}"]
     arith = [f"const double {sym.name} = tile_calls[{s}][j];"
              for s, sym in enumerate(split.calls)]
-    arith += _c_statements(ks, k, inp, par, out, steps=split.steps,
+    arith += _c_statements(ks, k, inp, par, res, steps=split.steps,
                            outputs=list(split.outputs), mark_unused=False)
-    body += [f"{P}_SIMD_LOOP", f"for (j = 0; j < {P}_TILE; ++j) {{"]
-    body += ["    " + x for x in arith] + ["}"]
-    if stage_out:
-        body += [f"for (j = 0; j < {P}_TILE; ++j) {{"]
-        body += [f"    out[(i0 + j) * {n_out} + {c}] = tile_out[{c}][j];" for c in range(n_out)]
-        body += ["}"]
+    lines += [f"{P}_SIMD_LOOP", f"for (j = 0; j < {P}_TILE; ++j) {{"]
+    lines += ["    " + x for x in arith] + ["}"]
+    lines += [f"for (j = 0; j < {P}_TILE; ++j) {{"]
+    lines += [f"    out[{c} * out_stride + j] = tile_res[{c}][j];" for c in range(k.output_size)]
+    return lines + ["}"]
+
+
+def _tiled_batch_body(ks: KernelSet, k: Kernel) -> list[str]:
+    """NAME_<kernel>_batch over y[n][size]: full tiles transposed through local buffers into
+    the tile function, the last partial tile state by state."""
+    P = _c_prefix(ks)
+    arr, n_in, n_out = k.input_name, len(k.input_symbols), k.output_size
+    used = _c_used(k.steps, list(enumerate(k.outputs)))
+    read = [c for c, s in enumerate(k.input_symbols) if s in used]
+    per_state = "params + i * params_stride" if ks.parameters else "params"
+    lines = ["size_t i0, i, j;", f"const size_t full = n - n % {P}_TILE;",
+             f"double tile_in[{n_in} * {P}_TILE], tile_out[{n_out} * {P}_TILE];"]
+    if not ks.parameters:
+        lines.append("(void)params_stride;")
     lines += [f"for (i0 = 0; i0 < full; i0 += {P}_TILE) {{"]
-    lines += ["    " + x for x in body] + ["}"]
-    if soa:
-        # the last partial tile, state by state through the same statements
-        rest = _c_statements(ks, k, lambda c: f"{arr}[{c} * n + i]",
-                             lambda q: f"params[{q} + i * params_stride]",
-                             lambda c: f"out[{c} * n + i]", mark_unused=False)
-        lines += ["for (i = full; i < n; ++i) {"] + ["    " + x for x in rest] + ["}"]
-    else:
-        lines += ["for (i = full; i < n; ++i)",
-                  f"    {ks.name}_{k.name}({arr} + i * {n_in}, {per_state}, out + i * {n_out});"]
+    if read:
+        lines += [f"    for (j = 0; j < {P}_TILE; ++j) {{"]
+        lines += [f"        tile_in[{c} * {P}_TILE + j] = {arr}[(i0 + j) * {n_in} + {c}];"
+                  for c in read]
+        lines += ["    }"]
+    lines += [f"    {ks.name}_{k.name}_tile(tile_in, {P}_TILE, "
+              f"params + i0 * params_stride, params_stride, tile_out, {P}_TILE);",
+              f"    for (j = 0; j < {P}_TILE; ++j) {{"]
+    lines += [f"        out[(i0 + j) * {n_out} + {c}] = tile_out[{c} * {P}_TILE + j];"
+              for c in range(n_out)]
+    lines += ["    }", "}", "for (i = full; i < n; ++i)",
+              f"    {ks.name}_{k.name}({arr} + i * {n_in}, {per_state}, out + i * {n_out});"]
+    return lines
+
+
+def _tiled_soa_body(ks: KernelSet, k: Kernel) -> list[str]:
+    """NAME_<kernel>_soa over y[size][n]: full tiles in place, the last partial tile state
+    by state through the single-state function."""
+    P = _c_prefix(ks)
+    arr, n_in, n_out = k.input_name, len(k.input_symbols), k.output_size
+    per_state = "params + i * params_stride" if ks.parameters else "params"
+    lines = ["size_t i0, i, c;", f"const size_t full = n - n % {P}_TILE;",
+             f"for (i0 = 0; i0 < full; i0 += {P}_TILE)",
+             f"    {ks.name}_{k.name}_tile({arr} + i0, n, params + i0 * params_stride, "
+             "params_stride, out + i0, n);",
+             "for (i = full; i < n; ++i) {",
+             f"    double state[{n_in}], result[{n_out}];",
+             f"    for (c = 0; c < {n_in}; ++c)",
+             f"        state[c] = {arr}[c * n + i];",
+             f"    {ks.name}_{k.name}(state, {per_state}, result);",
+             f"    for (c = 0; c < {n_out}; ++c)",
+             "        out[c * n + i] = result[c];",
+             "}"]
+    if not ks.parameters:
+        lines.insert(2, "(void)params_stride;")
     return lines
 
 
@@ -511,12 +539,14 @@ def vector_math_block(ks: KernelSet) -> str:
     glibc's vector math (libmvec)."""
     P = _c_prefix(ks)
     simd = '__attribute__((__simd__("notinbranch"))) extern'
-    return f"""/* Batch kernels (NAME_<kernel>_batch over y[n][size], NAME_<kernel>_soa over y[size][n])
- * work on tiles of {P}_TILE states: the library calls (sin, exp, ...) of a tile run first, in
- * a plain loop, then the arithmetic runs in a loop the compiler vectorises. Each state's
- * results are bit-identical to the single-state kernel's. With GCC on x86-64 Linux each batch
- * kernel is compiled once per vector width (AVX-512, AVX2, baseline) and the widest the
- * processor supports is picked at load time; define {P}_NO_CLONES to build one version.
+    return f"""/* The batch entry points of the right-hand sides (NAME_geodesic_rhs_batch and
+ * NAME_hamilton_rhs_batch over y[n][size], the _soa ones over y[size][n]) work on tiles of
+ * {P}_TILE states: the library calls (sin, exp, ...) of a tile run first, in a plain loop,
+ * then the arithmetic runs in a loop the compiler vectorises. Each state's results are
+ * bit-identical to the single-state kernel's. With GCC on x86-64 Linux they are compiled once
+ * per vector width (AVX-512, AVX2, baseline) and the widest the processor supports is picked
+ * at load time; define {P}_NO_CLONES to build one version. The other kernels' batch entry
+ * points loop over the single-state function (the _soa ones are plain vectorisable loops).
  * Build with -D{P}_VECTOR_MATH -O3 -fopenmp-simd -fno-builtin-sin -fno-builtin-cos and link
  * -lmvec to vectorise the calls too, with glibc's vector sin, cos, exp, log and pow
  * (documented to be within 4 ulp of the scalar functions). */
@@ -529,11 +559,14 @@ def vector_math_block(ks: KernelSet) -> str:
 #define {P}_CLONES
 #endif
 #if defined({P}_VECTOR_MATH) && defined(__GNUC__) && defined(__x86_64__) && !defined(__CUDACC__) && !defined(__clang__)
+#define {P}_VECTOR_CLONES {P}_CLONES
 {simd} double sin(double);
 {simd} double cos(double);
 {simd} double exp(double);
 {simd} double log(double);
 {simd} double pow(double, double);
+#else
+#define {P}_VECTOR_CLONES
 #endif
 #if defined(_OPENMP) || defined({P}_VECTOR_MATH)
 #define {P}_SIMD_LOOP _Pragma("omp simd")
@@ -566,10 +599,24 @@ def c_source(ks: KernelSet, env=None, preamble: str = "") -> str:
     for name, single, batch in c_prototypes(ks, f"{P}_RESTRICT"):
         k = kernels[name]
         functions.append({"prototype": single, "body": _c_body(ks, k)})
-        functions.append({"prototype": f"{P}_CLONES " + batch,
-                          "body": _tiled_body(ks, k, soa=False)})
-        functions.append({"prototype": f"{P}_CLONES " + soa_prototype(ks, k, f"{P}_RESTRICT"),
-                          "body": _tiled_body(ks, k, soa=True)})
+        soa = soa_prototype(ks, k, f"{P}_RESTRICT")
+        if name in TILED_KERNELS:
+            functions.append({"prototype": tile_prototype(ks, k), "body": _tile_body(ks, k)})
+            functions.append({"prototype": batch, "body": _tiled_batch_body(ks, k)})
+            functions.append({"prototype": soa, "body": _tiled_soa_body(ks, k)})
+            continue
+        # The other kernels: a loop over the single-state function, and a plain
+        # structure-of-arrays loop (vectorised in vector-math builds); each tiled and cloned
+        # version would cost more compile time than it saves.
+        n_in, n_out = len(k.input_symbols), k.output_size
+        pexpr = "params + i * params_stride" if npar else "params"
+        body = ["size_t i;"] + (["(void)params_stride;"] if not npar else [])
+        body += ["for (i = 0; i < n; ++i)",
+                 f"    {ks.name}_{name}({k.input_name} + i * {n_in}, {pexpr}, out + i * {n_out});"]
+        functions.append({"prototype": batch, "body": body})
+        soa_body = ["size_t i;", f"{P}_SIMD_LOOP", "for (i = 0; i < n; ++i) {"]
+        soa_body += ["    " + line for line in _c_body(ks, k, soa=True)] + ["}"]
+        functions.append({"prototype": f"{P}_VECTOR_CLONES " + soa, "body": soa_body})
     for form in ("geodesic", "hamilton"):
         functions.append({"prototype": gsl_prototype(ks, form),
                           "body": ["(void)t;",

@@ -6,9 +6,11 @@ system, followed by the output expressions (row-major over ``output_shape``). Ba
 kernel statement by statement; no backend re-derives anything.
 
 Optimisation happens here, once for all backends: constant metric entries are folded, repeated
-reciprocals and square roots of a common base are hoisted into one symbol, bases of integer
-powers are named so a power is a few multiplications of one value, and sympy's common
-subexpression elimination runs in canonical order (deterministic output).
+reciprocals and square roots of a common base (of either sign) are hoisted into one symbol,
+bases of integer powers are named and the powers of one symbol share their squarings, sympy's
+common subexpression elimination runs in canonical order (deterministic output), then common
+factors are pulled out of sums and a second CSE pass shares what that exposes. Finally every
+library call (sin, exp, ...) gets a statement of its own, so backends can batch them.
 """
 from __future__ import annotations
 
@@ -740,8 +742,8 @@ def _power_ladders(defs: list[tuple[sp.Symbol, sp.Expr]], exprs: list[sp.Expr]):
 
     b^3 and b^4 in one kernel would print as b*b*b and b*b*b*b (5 multiplications); naming
     b2 = b*b (and b4 = b2*b2, ...) turns every b^n into a product of the binary ladder, so
-    the same powers cost 1 + 1 + 1. Only symbols raised to some |n| >= 3, or to two different
-    |n| >= 2, get a ladder. Returns (defs + ladder definitions, rewritten defs and exprs).
+    the same powers cost 1 + 1 + 1. Only symbols raised to some |n| >= 3 get a ladder.
+    Returns (defs + ladder definitions, rewritten defs and exprs).
     """
     everything = [e for _, e in defs] + list(exprs)
     powers: dict = {}

@@ -37,6 +37,8 @@ import tempfile
 import time
 from pathlib import Path
 
+from runinfo import cpu_model, load_average, tree_state
+
 ROOT = Path(__file__).resolve().parent.parent
 
 CHILD_LOAD = r"""
@@ -116,37 +118,6 @@ def measure_spec(spec: Path, backend: str, cold_repeats: int, warm_repeats: int,
     return {"cold": cold, "warm": warm, "warm_wall": warm_wall, "misses": misses,
             "sympy_warm_any": any(r["sympy_after_load"] for r, _ in warms),
             "import_s": min(r["import_s"] for r, _ in warms)}
-
-
-def tree_state() -> str:
-    """git commit of the checkout, and whether it has uncommitted changes."""
-    try:
-        head = subprocess.run(["git", "rev-parse", "--short", "HEAD"], cwd=ROOT,
-                              capture_output=True, text=True, timeout=30).stdout.strip()
-        dirty = subprocess.run(["git", "status", "--porcelain", "--", "metricc", "templates"],
-                               cwd=ROOT, capture_output=True, text=True, timeout=30).stdout
-    except (OSError, subprocess.SubprocessError):
-        return "not a git checkout"
-    if not head:
-        return "not a git checkout"
-    return head + (" + uncommitted changes in metricc/ or templates/" if dirty.strip() else "")
-
-
-def load_average() -> str:
-    try:
-        return "load average %.2f %.2f %.2f" % os.getloadavg()
-    except (OSError, AttributeError):
-        return "load average unknown"
-
-
-def cpu_model() -> str:
-    try:
-        for line in open("/proc/cpuinfo", encoding="utf-8"):
-            if line.startswith("model name"):
-                return line.split(":", 1)[1].strip()
-    except OSError:
-        pass
-    return platform.processor() or platform.machine()
 
 
 def main(argv=None) -> int:

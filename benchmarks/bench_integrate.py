@@ -1,25 +1,46 @@
 """Batch integrator throughput: Kerr photons, C integrator vs scipy solve_ivp, 1 vs 2 threads.
 
-    python benchmarks/bench_integrate.py [--quick] [--rays N]
+    python benchmarks/bench_integrate.py [--quick] [--rays N] [--repeats R]
 
 Kerr (a = 0.9) photons from r = 1000 M toward the hole, equatorial-ish, impact parameters
 spread over capture and escape (0 to 10 M), rtol 1e-10, atol 1e-12, lam_end 3000 M. The
 baseline is what a user would otherwise write: scipy.integrate.solve_ivp(method="DOP853")
 per ray with the generated NumPy right-hand side (k.ivp_rhs()) and a terminal horizon
 event; it is timed on a sample of rays and compared as rays per second in the same run.
-Also: the NumPy batch integrator, and the C integrator with 1 and 2 OpenMP threads.
+Also: the NumPy batch integrator, and the C integrator with 1 and 2 OpenMP threads (best of
+--repeats runs each, through the public k.integrate).
+
+Integrator overhead: the right-hand-side evaluations per second inside the C integrator
+(1 thread) against the raw batch kernel's rate. The raw rate is timed like bench_rhs.py's
+"C batch, direct cffi call": lib.kerr_geodesic_rhs_batch on 1e5 preallocated states, best
+of >= 7 runs and >= 1 s of runs (the public k.geodesic_rhs adds input checks and an output
+allocation, which understate the kernel's rate; it is printed for reference). The
+evaluations per ray are counted with the NumPy integrator, which runs the same algorithm
+(same steps, rejections and dense-output stages), on a subset of the rays: its evaluations
+per accepted step times the C integrator's mean accepted steps over all rays.
 """
 from __future__ import annotations
 
 import argparse
+import gc
+import os
+import platform
+import sys
 import time
 from pathlib import Path
 
+from runinfo import cpu_model, tree_state
+
 import numpy as np
 
-import metricc
-
 ROOT = Path(__file__).resolve().parent.parent
+if str(ROOT) not in sys.path:
+    sys.path.insert(0, str(ROOT))
+
+import metricc  # noqa: E402
+from metricc import build  # noqa: E402
+
+CHUNK = 2000   # rays per timed call in the overhead measurement
 
 
 def photons(k, n: int, seed: int = 1) -> np.ndarray:
@@ -35,13 +56,44 @@ def photons(k, n: int, seed: int = 1) -> np.ndarray:
     return y
 
 
+def best_time(fn, repeats: int, min_total: float = 0.0) -> tuple[float, int]:
+    """Best perf_counter time of at least `repeats` calls (more until they add up to
+    `min_total` seconds), after one warm-up call, garbage collector off."""
+    fn()
+    times = []
+    enabled = gc.isenabled()
+    gc.disable()
+    try:
+        while len(times) < repeats or (sum(times) < min_total and len(times) < 10_000):
+            t0 = time.perf_counter()
+            fn()
+            times.append(time.perf_counter() - t0)
+    finally:
+        if enabled:
+            gc.enable()
+    return min(times), len(times)
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--quick", action="store_true")
-    ap.add_argument("--rays", type=int, default=None)
+    ap.add_argument("--quick", action="store_true", help="10^4 rays, one run per thread count")
+    ap.add_argument("--rays", type=int, default=None, help="rays (default 10^5)")
+    ap.add_argument("--repeats", type=int, default=None,
+                    help="timed C integrator runs per thread count, best taken (default 2; "
+                         "1 with --quick)")
     args = ap.parse_args()
     n = args.rays or (10_000 if args.quick else 100_000)
+    repeats = args.repeats or (1 if args.quick else 2)
     n_scipy = 20 if args.quick else 100
+    print(f"# command: python benchmarks/bench_integrate.py {' '.join(sys.argv[1:])}".rstrip())
+    print(f"# metricc {metricc.__version__}, Python {platform.python_version()}, numpy "
+          f"{np.__version__}; CPU: {cpu_model()}, {os.cpu_count()} logical CPUs")
+    print(f"# C compiler: {' '.join(build.compiler_command())} {' '.join(build.COMPILE_FLAGS)}")
+    try:
+        load = "load average %.2f %.2f %.2f" % os.getloadavg()
+    except (OSError, AttributeError):
+        load = "load average unknown"
+    print(f"# tree: {tree_state()}; {load} at start")
     k = metricc.load(ROOT / "specs" / "kerr.toml", backend="c")
     knp = metricc.load(ROOT / "specs" / "kerr.toml", backend="numpy")
     y = photons(k, n)
@@ -49,16 +101,28 @@ def main() -> None:
     print(f"Kerr a=0.9, {n} photons from r=1000 M, rtol 1e-10, atol 1e-12, lam_end {lam_end}")
     rates = {}
     for threads in (1, 2):
-        t = time.perf_counter()
-        res = k.integrate(y, lam_end, rtol=1e-10, atol=1e-12, threads=threads)
-        dt = time.perf_counter() - t
+        out = {}
+
+        def run():
+            out["res"] = k.integrate(y, lam_end, rtol=1e-10, atol=1e-12, threads=threads)
+        t0 = time.perf_counter()
+        run()                               # first run: also the result used below
+        dt = time.perf_counter() - t0
+        for _ in range(repeats - 1):
+            t0 = time.perf_counter()
+            run()
+            dt = min(dt, time.perf_counter() - t0)
+        res = out["res"]
         rates[threads] = n / dt
         names, counts = np.unique(res.status, return_counts=True)
-        print(f"C integrator, {threads} thread(s): {n / dt:12,.0f} rays/s  ({dt:.2f} s; "
-              f"{ {str(a): int(b) for a, b in zip(names, counts)} }; mean {res.steps.mean():.0f} steps)")
+        print(f"C integrator, {threads} thread(s): {n / dt:12,.0f} rays/s  (best {dt:.2f} s of "
+              f"{repeats}; { {str(a): int(b) for a, b in zip(names, counts)} }; mean "
+              f"{res.steps.mean():.1f} steps)")
+    steps_c = np.asarray(res.steps, dtype=float)
+
     m = min(n, 2000 if args.quick else 5000)
-    # The same algorithm in NumPy, with its RHS wrapped in a counter: evaluations per ray.
-    from metricc.integrate import EVENT_BASE, DOMAIN, integrate_numpy
+    # The same algorithm in NumPy, with its RHS wrapped in a counter: evaluations per step.
+    from metricc.integrate import DOMAIN, EVENT_BASE, integrate_numpy
     calls = [0]
 
     def counted(states, params):
@@ -70,22 +134,56 @@ def main() -> None:
     codes = np.array([EVENT_BASE, DOMAIN, DOMAIN], dtype=np.int32)
     params = tuple(np.full(m, v) for v in knp.parameters.values())
     t = time.perf_counter()
-    integrate_numpy(counted, stop, y[:m], lam_end, params, rtol=1e-10, atol=1e-12,
-                    max_steps=100000, method="dop853", samples=None, stop_codes=codes)
+    _, _, _, steps_np, _ = integrate_numpy(counted, stop, y[:m], lam_end, params, rtol=1e-10,
+                                           atol=1e-12, max_steps=100000, method="dop853",
+                                           samples=None, stop_codes=codes)
     dt = time.perf_counter() - t
-    per_ray = calls[0] / m
+    per_step = calls[0] / steps_np.sum()
+    per_ray = per_step * steps_c.mean()
     print(f"NumPy batch integrator:     {m / dt:12,.0f} rays/s  ({m} rays, {dt:.2f} s; "
-          f"{per_ray:.0f} RHS evaluations per ray)")
-    raw_states = np.tile(y[:min(n, 20000)], (5, 1))
-    best = 1e30
-    for _ in range(7):
-        t = time.perf_counter()
-        k.geodesic_rhs(raw_states)
-        best = min(best, time.perf_counter() - t)
-    raw = len(raw_states) / best
-    inside = rates[1] * per_ray
-    print(f"RHS evaluations/s inside the C integrator (1 thread): {inside:.3e}; raw batch "
-          f"k.geodesic_rhs: {raw:.3e}; ratio {inside / raw:.2f}")
+          f"{calls[0] / m:.1f} RHS evaluations per ray, {per_step:.3f} per accepted step)")
+    print(f"  same {m} rays, mean accepted steps: NumPy {steps_np.mean():.3f}, C "
+          f"{steps_c[:m].mean():.3f}; C over all {n} rays: {steps_c.mean():.3f} -> "
+          f"{per_ray:.1f} RHS evaluations per ray")
+
+    # Overhead: the 1-thread integrator against the raw batch kernel, both as best-of timings
+    # (a long single run is at the mercy of a noisy neighbour, a best-of is not): the rays in
+    # chunks of CHUNK, each chunk's best of `rounds` runs, summed; each round also times the
+    # raw kernel, called directly through cffi on preallocated buffers (as bench_rhs.py).
+    ffi, lib = k._c.ffi, k._c.lib
+    src = y[:min(n, 20000)]
+    raw_states = np.ascontiguousarray(np.tile(src, (-(-100_000 // len(src)), 1))[:100_000])
+    raw_out = np.empty_like(raw_states)
+    pvec = np.array(list(k.parameters.values()), dtype=np.float64)
+    yp, op, pp = (ffi.from_buffer("double[]", a) for a in (raw_states, raw_out, pvec))
+    fn = lib.kerr_geodesic_rhs_batch
+    nraw = len(raw_states)
+    fn(nraw, yp, pp, 0, op)
+    np.testing.assert_array_equal(raw_out[:50], k.geodesic_rhs(raw_states[:50]))
+    rounds = max(3, repeats + 1)
+    chunks = [y[i:i + CHUNK] for i in range(0, n, CHUNK)]
+    best_chunk = [np.inf] * len(chunks)
+    best_raw, runs_raw = np.inf, 0
+    for _ in range(rounds):
+        for c, yc in enumerate(chunks):
+            t0 = time.perf_counter()
+            k.integrate(yc, lam_end, rtol=1e-10, atol=1e-12, threads=1)
+            best_chunk[c] = min(best_chunk[c], time.perf_counter() - t0)
+        b, r = best_time(lambda: fn(nraw, yp, pp, 0, op), 7, 1.0 / rounds)
+        best_raw, runs_raw = min(best_raw, b), runs_raw + r
+    raw = nraw / best_raw
+    best_w, _ = best_time(lambda: k.geodesic_rhs(raw_states), 7, 0.3)
+    # for reference: the structure-of-arrays kernel the integrator calls for its stages
+    cols = np.ascontiguousarray(raw_states.T)
+    cp, cop = ffi.from_buffer("double[]", cols), ffi.from_buffer("double[]", raw_out)
+    best_s, _ = best_time(lambda: lib.kerr_geodesic_rhs_soa(nraw, cp, pp, 0, cop), 7, 0.3)
+    inside = n / sum(best_chunk) * per_ray
+    print(f"raw batch kernel, direct cffi call ({nraw} states, best of {runs_raw} runs): "
+          f"{raw:.3e} evaluations/s (through k.geodesic_rhs: {nraw / best_w:.3e}; "
+          f"kerr_geodesic_rhs_soa: {nraw / best_s:.3e})")
+    print(f"C integrator, 1 thread, chunks of {CHUNK} rays, best of {rounds} each: "
+          f"{n / sum(best_chunk):,.0f} rays/s -> {inside:.3e} RHS evaluations/s; "
+          f"ratio to the raw batch kernel {inside / raw:.2f}")
 
     from scipy.integrate import solve_ivp
     fun = knp.ivp_rhs()

@@ -44,6 +44,8 @@ import sys  # noqa: E402
 import time  # noqa: E402
 from pathlib import Path  # noqa: E402
 
+from runinfo import cpu_model, tree_state  # noqa: E402
+
 import numpy as np  # noqa: E402
 
 ROOT = Path(__file__).resolve().parent.parent
@@ -281,29 +283,6 @@ def pin_one_core():
         os.sched_setaffinity(0, {cpus[-1]})
         return f"pinned to CPU {cpus[-1]} (of {len(cpus)} allowed)"
     return "not pinned (no sched_setaffinity on this platform)"
-
-
-def tree_state():
-    """git commit of the checkout, and whether metricc/ or templates/ have local changes."""
-    import subprocess
-    try:
-        head = subprocess.run(["git", "rev-parse", "--short", "HEAD"], cwd=ROOT,
-                              capture_output=True, text=True, timeout=30).stdout.strip()
-        dirty = subprocess.run(["git", "status", "--porcelain", "--", "metricc", "templates"],
-                               cwd=ROOT, capture_output=True, text=True, timeout=30).stdout
-    except (OSError, subprocess.SubprocessError):
-        return "not a git checkout"
-    if not head:
-        return "not a git checkout"
-    return head + (" + uncommitted changes in metricc/ or templates/" if dirty.strip() else "")
-
-
-def cpu_model():
-    with contextlib.suppress(OSError):
-        for line in open("/proc/cpuinfo", encoding="utf-8"):
-            if line.startswith("model name"):
-                return line.split(":", 1)[1].strip()
-    return platform.processor() or platform.machine()
 
 
 def main(argv=None):

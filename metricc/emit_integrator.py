@@ -1,8 +1,14 @@
 """The batch integrator's C source, generated next to each spec's kernels.
 
-The Runge-Kutta stages are unrolled from the tableaus in :mod:`metricc.tableaus` (only
-non-zero coefficients are printed); the driver around them is layout in
-``templates/c_integrator.c.j2``. The same algorithm in NumPy is :mod:`metricc.integrate`.
+The integrator advances LANES states side by side ("lanes"): the Runge-Kutta stage sums are
+loops over the lanes in structure-of-arrays layout, and when every lane is busy one call of
+the spec's ``*_soa`` kernel evaluates a stage for all of them, so the integrator's right-hand
+side evaluations run at the batch kernels' rate. Each lane still follows its own state
+through exactly the arithmetic of a one-state integrator: the results do not depend on the
+lanes, the batch or the thread count. The stages are unrolled from the tableaus in
+:mod:`metricc.tableaus` (only non-zero coefficients are printed); the per-lane driver around
+them is layout in ``templates/c_integrator.c.j2``. The same algorithm in NumPy is
+:mod:`metricc.integrate`.
 """
 from __future__ import annotations
 
@@ -10,55 +16,99 @@ from .integrate import DOMAIN, EVENT_BASE, HMIN_REL, ROOT_REL_TOL
 from .printing import number_literal
 from .tableaus import DOP853, DP5
 
-KMAX = 16      # stages kept (DOP853: 12 + f(y_new) + 3 for the dense output)
+KMAX = 16      # stages of one state kept for the dense output (DOP853: 12 + f(y_new) + 3 extra)
 CONTMAX = 7    # dense-output coefficient vectors (DOP853: 7, DP5: 4)
+LANES = 16     # states advanced side by side (a multiple of the batch kernels' tile of 16)
+FEW = 4        # at most this many busy lanes: one-state steps (idle lanes' sums cost more)
+SOA_STAGES = max(DOP853["stages"], DP5["stages"])   # stages kept per lane (13)
 
 
 def _lit(v) -> str:
     return number_literal(float(v))
 
 
-def _combo(coeffs, n: int, scale: str = "h") -> str:
-    """'h * (c0*k[0*n + i] + ...)' over the non-zero coefficients."""
-    terms = [f"{_lit(c)} * k[{j * n} + i]" for j, c in enumerate(coeffs) if float(c) != 0.0]
+def _combo(coeffs, ref, scale: str = "h") -> str:
+    """'h * (c0*K0 + ...)' over the non-zero coefficients; ref(j) is stage j's operand."""
+    terms = [f"{_lit(c)} * {ref(j)}" for j, c in enumerate(coeffs) if float(c) != 0.0]
     inner = " + ".join(terms) if terms else "0.0"
     return f"{scale} * ({inner})" if scale else f"({inner})"
 
 
-def _step_function(name: str, P: str, tab: dict, n: int) -> str:
-    tag = tab["name"]
-    s = tab["stages"]
-    lines = [f"static {P}_FN double {name}_{tag}_step(int form, const double *y, double h, "
-             "const double *params, double rtol, double atol, double *k, double *ynew)", "{",
-             f"    double yt[{n}];", "    int i;"]
-    if tag == "dp5":
-        lines.append("    double err = 0.0;")
+def _aos(n: int):
+    """Stage operands of one state: k[j*n + i]."""
+    return lambda j: f"k[{j * n} + i]"
+
+
+def _stages_function(name: str, P: str, tab: dict, n: int, lanes: int = LANES) -> str:
+    """One attempted step for the lanes (structure of arrays: component i of lane l at
+    [i * lanes + l], stage j at k + j * n * lanes): the stages, y_new and the error norm of
+    each lane, and bad[l] = 0 exactly when lane l's y_new is finite. With lanes > 1 the stage
+    evaluations go through NAME_stage_rhs (idle lanes, all at nl or above if not all are
+    busy, take part in the sums but are not evaluated); with lanes = 1
+    (``NAME_<method>_stages1``, the layout is then that of one state) through the
+    single-state kernel. Per lane the operations and their order are those of a one-state
+    step, the same in both versions."""
+    tag, s, L = tab["name"], tab["stages"], lanes
+    R = f"{P}_RESTRICT"
+
+    def ref(j):
+        return f"k[{j * n * L} + o]"
+    loop = [f"    for (i = 0; i < {n}; ++i) {{", f"        for (l = 0; l < {L}; ++l) {{",
+            f"            const int o = i * {L} + l;"]
+    close = ["        }", "    }"]
+    if L > 1:
+        lines = [f"static {P}_FN {P}_INLINE void {name}_{tag}_stages(int form, int nl, int full, "
+                 f"const int *active, const double *{R} y,"]
+
+        def rhs(src, st):
+            return f"    {name}_stage_rhs(form, nl, full, active, {src}, lp, k + {st * n * L});"
     else:
-        lines.append("    double err5 = 0.0, err3 = 0.0, deno;")
+        lines = [f"static {P}_FN {P}_NOINLINE void {name}_{tag}_stages1(int form, "
+                 f"const double *{R} y,"]
+
+        def rhs(src, st):
+            return f"    {name}_rhs_form(form, {src}, lp, k + {st * n});"
+    lines += [f"        const double *{R} h, const double *{R} lp, double rtol, double atol, "
+              f"double *{R} k,",
+              f"        double *{R} ynew, double *{R} err, double *{R} bad)", "{",
+              f"    double yt[{n * L}];"]
+    if tag == "dp5":
+        lines.append(f"    double acc[{L}];")
+    else:
+        lines.append(f"    double err5[{L}], err3[{L}];")
+    lines.append("    int i, l;")
     for st in range(1, s - 1):
-        lines.append(f"    for (i = 0; i < {n}; ++i) yt[i] = y[i] + {_combo(tab['a'][st], n)};")
-        lines.append(f"    {name}_rhs_form(form, yt, params, k + {st * n});")
-    lines.append(f"    for (i = 0; i < {n}; ++i) ynew[i] = y[i] + {_combo(tab['b'][:s - 1], n)};")
-    lines.append(f"    {name}_rhs_form(form, ynew, params, k + {(s - 1) * n});")
-    lines.append(f"    for (i = 0; i < {n}; ++i) {{")
+        lines += loop + [f"            yt[o] = y[o] + {_combo(tab['a'][st], ref, 'h[l]')};"] + close
+        lines.append(rhs("yt", st))
+    init = [f"    for (l = 0; l < {L}; ++l) {{"]
+    init += (["        acc[l] = 0.0;"] if tag == "dp5"
+             else ["        err5[l] = 0.0;", "        err3[l] = 0.0;"])
+    init += ["        bad[l] = 0.0;", "    }"]
     # a comparison rather than fmax: fmax is a libm call when NaN semantics must be kept,
-    # and a NaN here makes the error non-finite (the step is rejected) either way
-    lines.append("        const double ay = fabs(y[i]), an = fabs(ynew[i]);")
-    lines.append("        const double sk = atol + rtol * (ay > an ? ay : an);")
+    # and a NaN here makes the error non-finite (the step is rejected) either way;
+    # bad[l] stays 0 while every component of lane l's y_new is finite (an - an is NaN for
+    # an infinite or NaN component): the finiteness test, vectorised with the error norm
+    norm = ["            const double ay = fabs(y[o]), an = fabs(ynew[o]);",
+            "            const double sk = atol + rtol * (ay > an ? ay : an);",
+            "            bad[l] += an - an;"]
     if tag == "dp5":
-        lines.append(f"        const double e = {_combo(tab['e'], n)} / sk;")
-        lines.append("        err += e * e;")
-        lines.append("    }")
-        lines.append(f"    return sqrt(err / {n}.0);")
+        norm += [f"            const double e = {_combo(tab['e'], ref, 'h[l]')} / sk;",
+                 "            acc[l] += e * e;"]
+        final = [f"    for (l = 0; l < {L}; ++l) err[l] = sqrt(acc[l] / {n}.0);"]
     else:
-        lines.append(f"        const double e5 = {_combo(tab['e5'], n, '')} / sk;")
-        lines.append(f"        const double e3 = {_combo(tab['e3'], n, '')} / sk;")
-        lines.append("        err5 += e5 * e5;")
-        lines.append("        err3 += e3 * e3;")
-        lines.append("    }")
-        lines.append("    deno = err5 + 0.01 * err3;")
-        lines.append("    if (!(deno > 0.0)) deno = 1.0;")
-        lines.append(f"    return fabs(h) * err5 / sqrt(deno * {n}.0);")
+        norm += [f"            const double e5 = {_combo(tab['e5'], ref, '')} / sk;",
+                 f"            const double e3 = {_combo(tab['e3'], ref, '')} / sk;",
+                 "            err5[l] += e5 * e5;",
+                 "            err3[l] += e3 * e3;"]
+        final = [f"    for (l = 0; l < {L}; ++l) {{",
+                 "        double deno = err5[l] + 0.01 * err3[l];",
+                 "        if (!(deno > 0.0)) deno = 1.0;",
+                 f"        err[l] = fabs(h[l]) * err5[l] / sqrt(deno * {n}.0);",
+                 "    }"]
+    lines += loop + [f"            ynew[o] = y[o] + {_combo(tab['b'][:s - 1], ref, 'h[l]')};"]
+    lines += close
+    lines.append(rhs("ynew", s - 1))
+    lines += init + loop + norm + close + final
     lines.append("}")
     return "\n".join(lines) + "\n"
 
@@ -77,7 +127,7 @@ def _dense_functions(name: str, P: str, n: int) -> list[str]:
         cont[i] = ydiff;
         cont[{n} + i] = bspl;
         cont[{2 * n} + i] = ydiff - h * k[{6 * n} + i] - bspl;
-        cont[{3 * n} + i] = {_combo(d5, n)};
+        cont[{3 * n} + i] = {_combo(d5, _aos(n))};
     }}
 }}
 """
@@ -92,9 +142,9 @@ def _dense_functions(name: str, P: str, n: int) -> list[str]:
     extra = []
     for e, row in enumerate(DOP853["a_extra"]):
         st = 13 + e
-        extra.append(f"    for (i = 0; i < {n}; ++i) yt[i] = y[i] + {_combo(row, n)};")
+        extra.append(f"    for (i = 0; i < {n}; ++i) yt[i] = y[i] + {_combo(row, _aos(n))};")
         extra.append(f"    {name}_rhs_form(form, yt, params, k + {st * n});")
-    dcoef = "\n".join(f"        cont[{(3 + r) * n} + i] = {_combo(DOP853['d'][r], n)};"
+    dcoef = "\n".join(f"        cont[{(3 + r) * n} + i] = {_combo(DOP853['d'][r], _aos(n))};"
                       for r in range(4))
     dop_prepare = (f"static {P}_FN void {name}_dop853_prepare(int form, const double *y, "
                    "const double *ynew, double *k,\n"
@@ -123,6 +173,7 @@ def integrator_context(ks) -> dict:
     n = 2 * ks.dim
     nev, ndom = len(ks.events), len(ks.domain)
     nstop = nev + ndom
+    npar = len(ks.parameters)
     stop_body = []
     if nstop:
         stop_body.append(f"{name}_stops(y, params, g);")
@@ -139,15 +190,19 @@ def integrator_context(ks) -> dict:
         return {"expo1": _lit(tab["expo1"]), "beta": _lit(tab["beta"]),
                 "facc1": _lit(1.0 / tab["fac_min"]), "facc2": _lit(1.0 / tab["fac_max"])}
 
-    steps = [stop_code, _step_function(name, P, DP5, n), _step_function(name, P, DOP853, n)]
+    steps = [stop_code] + [_stages_function(name, P, tab, n, lanes)
+                           for lanes in (LANES, 1) for tab in (DP5, DOP853)]
     steps += _dense_functions(name, P, n)
-    npar = len(ks.parameters)
+    # a lane's parameters: a copy of its state's vector (lane l's at lp + l * npar)
+    lane_params = ([f"for (j = 0; j < {npar}; ++j) "
+                    "lp[j] = job->params[r * job->params_stride + j];"] if npar else [])
     return {"P": P, "name": name, "n": n, "nstop": nstop, "nstop1": max(nstop, 1),
-            "kmax": KMAX, "contmax": CONTMAX, "root_tol": _lit(ROOT_REL_TOL),
+            "kmax": KMAX, "contmax": CONTMAX, "lanes": LANES, "few": FEW, "soa_stages": SOA_STAGES,
+            "npar": npar, "npar1": max(npar, 1), "lane_params": lane_params,
+            "stages": {"dp5": DP5["stages"], "dop853": DOP853["stages"]},
+            "root_tol": _lit(ROOT_REL_TOL),
             "hmin_rel": _lit(HMIN_REL), "dp5": ctl(DP5), "dop853": ctl(DOP853),
-            "stop_body": stop_body, "step_functions": steps,
-            "param_ptr": "params + i * params_stride" if npar else "params",
-            "driver_prologue": [] if npar else ["(void)params_stride;"]}
+            "stop_body": stop_body, "step_functions": steps}
 
 
 def options_struct(ks, restrict_free: bool = False) -> str:

@@ -344,7 +344,6 @@ TILE = 16               # states per tile of the batch kernels
 # Kernels whose batch entry points run in tiles (cloned per vector width): the right-hand
 # sides, which integrators and ray tracers call millions of times.
 TILED_KERNELS = ("geodesic_rhs", "hamilton_rhs")
-TILE_OUT_MAX = 64       # outputs staged in a tile buffer (larger outputs are stored directly)
 
 
 @dataclass(frozen=True)

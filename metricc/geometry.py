@@ -485,28 +485,48 @@ def _rank_one_form(metric: sp.ImmutableMatrix, coords, params, sampler: "_Sample
                            moderate_first=True)
     if len(points) == 0:
         return None
-    g = sampler.metric(points)
-    defaults = sampler.defaults
-    c_num = np.array(sp.lambdify([params], const, modules="numpy")(defaults), dtype=float)
-    if not np.all(np.isfinite(c_num)) or abs(np.linalg.det(c_num)) < 1e-12:
+    # Parameters can be changed at every call, so the form is checked at the defaults and at
+    # two shifted parameter sets (a term that vanishes only at the default values, such as
+    # q*k k^T with q = 0, must not pass).
+    defaults = np.asarray(sampler.defaults, dtype=float)
+    shift = 0.05 * (np.abs(defaults) + 1.0)
+    param_sets = [defaults, defaults + shift, defaults - shift * np.where(
+        np.arange(len(defaults)) % 2 == 0, 1.0, -1.0)]
+    const_f = sp.lambdify([params], const, modules="numpy")
+    with np.errstate(all="ignore"):
+        c_nums = [np.array(const_f(list(q)), dtype=float) for q in param_sets]
+    if not np.all(np.isfinite(c_nums[0])) or abs(np.linalg.det(c_nums[0])) < 1e-12:
         return None
+    metrics = [sampler.metric(points, list(q)) for q in param_sets]
     for _, p, s, vector in sorted(candidates, key=lambda c: (c[0], c[1])):
-        f = sp.lambdify([coords, params], [s, *vector], modules="numpy")
-        with np.errstate(all="ignore"):
-            vals = [np.broadcast_to(np.asarray(v, dtype=float), (len(points),))
-                    for v in f(points.T, defaults)]
+        if all(_reproduces(coords, params, s, vector, points, list(q), c_num, g, strict=k == 0)
+               for k, (q, c_num, g) in enumerate(zip(param_sets, c_nums, metrics))):
+            inverse = sp.ImmutableMatrix(const.inv(method="LU"))
+            return RankOneForm(
+                constant=const, constant_inverse=inverse, scale=s, vector=vector, pivot=p,
+                dscale=tuple(sp.diff(s, x) for x in coords),
+                dvector=tuple(tuple(sp.diff(e, x) for e in vector) for x in coords))
+    return None
+
+
+def _reproduces(coords, params, s, vector, points, values, c_num, g, strict: bool) -> bool:
+    """Does C + s l l^T match the metric g (m, dim, dim) at points for parameter values?
+
+    strict (the spec's defaults): every point must be finite and match. Otherwise points
+    where either side is not finite (shifted parameters may leave the chart) are skipped,
+    and a check with no finite point passes vacuously."""
+    f = sp.lambdify([coords, params], [s, *vector], modules="numpy")
+    with np.errstate(all="ignore"):
+        vals = [np.broadcast_to(np.asarray(v, dtype=float), (len(points),))
+                for v in f(points.T, values)]
         s_num, l_num = vals[0], np.stack(vals[1:], axis=-1)
         model = c_num + s_num[:, None, None] * l_num[:, :, None] * l_num[:, None, :]
-        scale = np.max(np.abs(g), axis=(1, 2))
-        if not (np.all(np.isfinite(model))
-                and np.all(np.max(np.abs(model - g), axis=(1, 2)) <= RANK_ONE_TOLERANCE * scale)):
-            continue
-        inverse = sp.ImmutableMatrix(const.inv(method="LU"))
-        return RankOneForm(
-            constant=const, constant_inverse=inverse, scale=s, vector=vector, pivot=p,
-            dscale=tuple(sp.diff(s, x) for x in coords),
-            dvector=tuple(tuple(sp.diff(e, x) for e in vector) for x in coords))
-    return None
+        finite = np.all(np.isfinite(model), axis=(1, 2)) & np.all(np.isfinite(g), axis=(1, 2))
+        if strict and not np.all(finite):
+            return False
+        scale = np.max(np.abs(g[finite]), axis=(1, 2))
+        err = np.max(np.abs(model[finite] - g[finite]), axis=(1, 2))
+    return bool(np.all(err <= RANK_ONE_TOLERANCE * scale))
 
 
 def _rank_one_cost(form: RankOneForm) -> int:
@@ -574,13 +594,15 @@ class _Sampler:
                          for j in range(self.dim)] for i in range(self.dim)]
         self.domain = [sp.lambdify([coords, params], d, modules="numpy") for _, d in domain]
 
-    def metric(self, points) -> np.ndarray:
+    def metric(self, points, params=None) -> np.ndarray:
+        """g (m, dim, dim) at points (m, dim); params: parameter values (default: the spec's)."""
         cols, n = points.T, len(points)
+        values = self.defaults if params is None else params
         g = np.empty((n, self.dim, self.dim))
         with np.errstate(all="ignore"):
             for i in range(self.dim):
                 for j in range(self.dim):
-                    g[:, i, j] = np.broadcast_to(np.asarray(self.entries[i][j](cols, self.defaults),
+                    g[:, i, j] = np.broadcast_to(np.asarray(self.entries[i][j](cols, values),
                                                             dtype=float), n)
         return g
 

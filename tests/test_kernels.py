@@ -217,6 +217,29 @@ def _rank_one_reference(point, velocity, second: bool):
     return gnum, -np.einsum("abc,b,c->a", gamma, u, u), force
 
 
+def test_rank_one_form_must_hold_for_other_parameter_values():
+    """A second rank-one term whose weight is a parameter with default 0: the metric is of
+    rank-one form only at the default, and parameters change per call, so the form must be
+    refused; with q = 0.3 the kernels must match a direct inverse (numpy)."""
+    text = _RANK_ONE.format(name="hidden_rank_two", second="q*sin(t + x)^2/5").replace(
+        "m = 0.7", "m = 0.7\nq = 0.0")
+    from metricc.spec import parse_spec
+    assert derive(parse_spec(text)).rank_one is None
+    k = metricc.loads(text, backend="auto")
+    rng = np.random.default_rng(12)
+    point, u = rng.uniform(-1.5, 1.5, 4), rng.normal(size=4)
+    params = {"q": 0.3}
+    g = k.metric(point, params=params)
+    # reference: Christoffel symbols from central differences of the metric, numpy's inverse
+    h = 1e-5
+    dg = np.array([(k.metric(point + h * e, params=params) - k.metric(point - h * e, params=params))
+                   / (2 * h) for e in np.eye(4)])                 # [c, i, j] = d_c g_ij
+    first = 0.5 * (np.einsum("bdc->dbc", dg) + np.einsum("cdb->dbc", dg) - dg)
+    expect = -np.einsum("ad,dbc,b,c->a", np.linalg.inv(g), first, u, u)
+    np.testing.assert_allclose(k.geodesic_rhs(np.concatenate([point, u]), params=params)[4:],
+                               expect, rtol=1e-6, atol=1e-8)
+
+
 @pytest.mark.parametrize("second", [False, True])
 def test_rank_one_form_against_a_direct_inverse(second):
     text = _RANK_ONE.format(name="rank_two" if second else "rank_one",

@@ -14,7 +14,7 @@ import jinja2
 from ._version import __version__
 from . import emit_integrator
 from .integrate import DOMAIN, DONE, EVENT_BASE, MAX_STEPS, NOT_FINITE, STEP_UNDERFLOW
-from .kernels import Assign, Kernel, KernelSet, Solve
+from .kernels import Assign, Kernel, KernelSet, Solve, live_steps, symbols_read
 from .printing import Printer, is_library_call
 from .resources import template_dir
 
@@ -297,7 +297,7 @@ def _c_statements(ks: KernelSet, k: Kernel, load, load_param, store, steps=None,
     pr = Printer("c")
     steps = k.steps if steps is None else steps
     outputs = list(enumerate(k.outputs)) if outputs is None else outputs
-    used = _c_used(steps, outputs)
+    used = symbols_read(steps, [e for _, e in outputs])
     lines = []
     loaded = False
     for i, s in enumerate(k.input_symbols):
@@ -369,28 +369,11 @@ def _split_calls(k: Kernel) -> _Split:
                          if isinstance(st, Assign) and is_library_call(st.expr))
     outputs = tuple(enumerate(k.outputs))
     rest = [st for st in k.steps if not (isinstance(st, Assign) and st.target in call_targets)]
-    steps = _live_steps(rest, _c_used((), outputs))
-    used_calls = _c_used(steps, outputs)
+    steps = live_steps(rest, symbols_read((), k.outputs))
+    used_calls = symbols_read(steps, k.outputs)
     calls = tuple(t for t in call_targets if t in used_calls)
-    call_steps = _live_steps(list(k.steps), set(calls))
+    call_steps = live_steps(list(k.steps), set(calls))
     return _Split(calls, tuple(call_steps), tuple(steps), outputs)
-
-
-def _live_steps(steps: list, live: set) -> list:
-    """The steps that (transitively) produce the symbols in ``live``, in order."""
-    live = set(live)
-    kept = []
-    for st in reversed(steps):
-        targets = (st.target,) if isinstance(st, Assign) else tuple(
-            s for col in st.results for s in col)
-        if any(t in live for t in targets):
-            kept.append(st)
-            if isinstance(st, Assign):
-                live |= st.expr.free_symbols
-            else:
-                for e in st.matrix + tuple(x for col in st.rhs for x in col):
-                    live |= e.free_symbols
-    return list(reversed(kept))
 
 
 def tile_prototype(ks: KernelSet, k: Kernel) -> str:
@@ -413,7 +396,7 @@ def _tile_body(ks: KernelSet, k: Kernel) -> list[str]:
     # results go to a local buffer first: stores through out with a run-time stride could
     # overlap as far as the compiler knows, which would keep the loop scalar
     res = lambda c: f"tile_res[{c}][j]"                       # noqa: E731
-    used = _c_used(k.steps, list(enumerate(k.outputs)))
+    used = k.used_symbols()
     lines = ["size_t j;", f"double tile_res[{k.output_size}][{P}_TILE];"]
     if not any(s in used for s in k.input_symbols):
         lines += ["(void)in;", "(void)in_stride;"]
@@ -443,7 +426,7 @@ def _tiled_batch_body(ks: KernelSet, k: Kernel) -> list[str]:
     the tile function, the last partial tile state by state."""
     P = _c_prefix(ks)
     arr, n_in, n_out = k.input_name, len(k.input_symbols), k.output_size
-    used = _c_used(k.steps, list(enumerate(k.outputs)))
+    used = k.used_symbols()
     read = [c for c, s in enumerate(k.input_symbols) if s in used]
     per_state = "params + i * params_stride" if ks.parameters else "params"
     lines = ["size_t i0, i, j;", f"const size_t full = n - n % {P}_TILE;",
@@ -487,19 +470,6 @@ def _tiled_soa_body(ks: KernelSet, k: Kernel) -> list[str]:
     if not ks.parameters:
         lines.insert(2, "(void)params_stride;")
     return lines
-
-
-def _c_used(steps, outputs) -> set:
-    used = set()
-    for _, e in outputs:
-        used |= e.free_symbols
-    for st in steps:
-        if isinstance(st, Assign):
-            used |= st.expr.free_symbols
-        else:
-            for e in st.matrix + tuple(x for col in st.rhs for x in col):
-                used |= e.free_symbols
-    return used
 
 
 def _static_solve(A: str, B: str, n: int, k: int, order, tag: int) -> list[str]:

@@ -75,10 +75,7 @@ class Kernel:
 
     def used_symbols(self) -> set[sp.Symbol]:
         """Every symbol the steps and outputs read (inputs, parameters, temporaries)."""
-        used = _free(self.outputs)
-        for st in self.steps:
-            used |= _uses(st)
-        return used
+        return symbols_read(self.steps, self.outputs)
 
 
 @dataclass(frozen=True)
@@ -689,7 +686,12 @@ def _name_calls(steps: list, outputs):
 
 
 def _drop_dead(steps: list, outputs) -> list:
-    live = _free(outputs)
+    return live_steps(steps, _free(outputs))
+
+
+def live_steps(steps, live: set) -> list:
+    """The steps that (transitively) produce the symbols in ``live``, in their order."""
+    live = set(live)
     kept = []
     for st in reversed(steps):
         if any(s in live for s in _defines(st)):
@@ -698,33 +700,31 @@ def _drop_dead(steps: list, outputs) -> list:
     return list(reversed(kept))
 
 
+def symbols_read(steps, outputs) -> set:
+    """Every symbol that ``steps`` and the ``outputs`` expressions read."""
+    used = _free(outputs)
+    for st in steps:
+        used |= _uses(st)
+    return used
+
+
 def _symbols_in(exprs) -> set:
     """The symbols of ``exprs`` (free_symbols, found in one walk of the shared DAG)."""
+    return {node for node in _dag_nodes(exprs) if node.is_Symbol}
+
+
+def _dag_nodes(exprs) -> set:
+    """Every distinct node of ``exprs``, atoms included (a walk of the DAG, not the tree:
+    the expressions before CSE share most of their subtrees)."""
     seen: set = set()
-    found: set = set()
     stack = list(exprs)
     while stack:
         node = stack.pop()
         if node in seen:
             continue
         seen.add(node)
-        if node.is_Symbol:
-            found.add(node)
-        elif not node.is_Atom:
+        if not node.is_Atom:
             stack.extend(node.args)
-    return found
-
-
-def _distinct_nodes(exprs) -> set:
-    """Every distinct compound node of ``exprs`` (a walk of the DAG, not of the tree)."""
-    seen: set = set()
-    stack = list(exprs)
-    while stack:
-        node = stack.pop()
-        if node.is_Atom or node in seen:
-            continue
-        seen.add(node)
-        stack.extend(node.args)
     return seen
 
 
@@ -747,7 +747,7 @@ def _power_ladders(defs: list[tuple[sp.Symbol, sp.Expr]], exprs: list[sp.Expr]):
     """
     everything = [e for _, e in defs] + list(exprs)
     powers: dict = {}
-    nodes = _distinct_nodes(everything)
+    nodes = _dag_nodes(everything)
     for node in nodes:
         if node.is_Pow and node.base.is_Symbol and node.exp.is_Integer and abs(node.exp) >= 2:
             powers.setdefault(node.base, set()).add(abs(int(node.exp)))

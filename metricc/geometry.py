@@ -235,11 +235,11 @@ def derive(spec: Spec) -> Geometry:
     rank_one = None
     if any(len(b.indices) >= 3 for b in blocks):
         rank_one = _rank_one_form(metric, coords, params, sampler)
-        if rank_one is not None and _rank_one_cost(rank_one) < sum(
+        cost = _rank_one_cost(rank_one) if rank_one is not None else None
+        if cost is not None and cost < sum(
                 min(c for c in (b.cost_symbolic, b.cost_numeric) if c is not None)
                 for b in blocks):
-            blocks = (InverseBlock(tuple(range(dim)), "symbolic", None,
-                                   _rank_one_cost(rank_one),
+            blocks = (InverseBlock(tuple(range(dim)), "symbolic", None, cost,
                                    weighted_numeric_cost(dim, nrhs=1), form="rank-one"),)
         else:
             rank_one = None
@@ -499,7 +499,8 @@ def _rank_one_form(metric: sp.ImmutableMatrix, coords, params, sampler: "_Sample
         return None
     metrics = [sampler.metric(points, list(q)) for q in param_sets]
     for _, p, s, vector in sorted(candidates, key=lambda c: (c[0], c[1])):
-        if all(_reproduces(coords, params, s, vector, points, list(q), c_num, g, strict=k == 0)
+        f = sp.lambdify([coords, params], [s, *vector], modules="numpy")
+        if all(_reproduces(f, points, list(q), c_num, g, strict=k == 0)
                for k, (q, c_num, g) in enumerate(zip(param_sets, c_nums, metrics))):
             inverse = sp.ImmutableMatrix(const.inv(method="LU"))
             return RankOneForm(
@@ -509,13 +510,13 @@ def _rank_one_form(metric: sp.ImmutableMatrix, coords, params, sampler: "_Sample
     return None
 
 
-def _reproduces(coords, params, s, vector, points, values, c_num, g, strict: bool) -> bool:
+def _reproduces(f, points, values, c_num, g, strict: bool) -> bool:
     """Does C + s l l^T match the metric g (m, dim, dim) at points for parameter values?
+    f(points.T, values) gives [s, l_0, ..., l_dim-1]; c_num is C at these values.
 
     strict (the spec's defaults): every point must be finite and match. Otherwise points
     where either side is not finite (shifted parameters may leave the chart) are skipped,
     and a check with no finite point passes vacuously."""
-    f = sp.lambdify([coords, params], [s, *vector], modules="numpy")
     with np.errstate(all="ignore"):
         vals = [np.broadcast_to(np.asarray(v, dtype=float), (len(points),))
                 for v in f(points.T, values)]

@@ -36,4 +36,15 @@ __attribute__((__simd__("notinbranch"))) extern double sin(double);
 __attribute__((__simd__("notinbranch"))) extern double cos(double);
 #endif
 
+/* NAME_batch: the plain batch loop over the single-state function NAME (states of 8
+ * doubles, one shared parameter vector), i.e. one state per call. */
+#define HAND_ONE_STATE_PER_CALL(NAME)                                                      \
+    void NAME##_batch(size_t n, const double *restrict y, const double *restrict p,       \
+                      double *restrict out)                                               \
+    {                                                                                     \
+        size_t i;                                                                         \
+        for (i = 0; i < n; ++i)                                                           \
+            NAME(y + 8 * i, p, out + 8 * i);                                              \
+    }
+
 #endif

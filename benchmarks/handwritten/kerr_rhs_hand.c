@@ -69,13 +69,7 @@ void hand_kerr_geodesic_rhs(const double *restrict y, const double *restrict p,
     kerr_geodesic(p[0], p[1], y[1], s, c, y[4], y[5], y[6], y[7], out + 4, 1);
 }
 
-void hand_kerr_geodesic_rhs_batch(size_t n, const double *restrict y, const double *restrict p,
-                                  double *restrict out)
-{
-    size_t i;
-    for (i = 0; i < n; ++i)
-        hand_kerr_geodesic_rhs(y + 8 * i, p, out + 8 * i);
-}
+HAND_ONE_STATE_PER_CALL(hand_kerr_geodesic_rhs)
 
 HAND_CLONES void hand_kerr_geodesic_rhs_batch_simd(size_t n, const double *restrict y,
                                                    const double *restrict p,

@@ -148,21 +148,9 @@ void hand_ks_hamilton_rhs(const double *restrict z, const double *restrict p,
     out[7] = o[6];
 }
 
-void hand_ks_geodesic_rhs_batch(size_t n, const double *restrict y, const double *restrict p,
-                                double *restrict out)
-{
-    size_t i;
-    for (i = 0; i < n; ++i)
-        hand_ks_geodesic_rhs(y + 8 * i, p, out + 8 * i);
-}
+HAND_ONE_STATE_PER_CALL(hand_ks_geodesic_rhs)
 
-void hand_ks_hamilton_rhs_batch(size_t n, const double *restrict z, const double *restrict p,
-                                double *restrict out)
-{
-    size_t i;
-    for (i = 0; i < n; ++i)
-        hand_ks_hamilton_rhs(z + 8 * i, p, out + 8 * i);
-}
+HAND_ONE_STATE_PER_CALL(hand_ks_hamilton_rhs)
 
 HAND_CLONES void hand_ks_geodesic_rhs_batch_simd(size_t n, const double *restrict y,
                                                  const double *restrict p, double *restrict out)

@@ -12,7 +12,7 @@ from dataclasses import dataclass
 import jinja2
 
 from ._version import __version__
-from . import emit_integrator
+from . import emit_integrator, emit_trig
 from .integrate import DOMAIN, DONE, EVENT_BASE, MAX_STEPS, NOT_FINITE, STEP_UNDERFLOW
 from .kernels import Assign, Kernel, KernelSet, Solve, live_steps, symbols_read
 from .printing import Printer, is_library_call
@@ -288,13 +288,18 @@ def _c_body(ks: KernelSet, k: Kernel, soa: bool = False) -> list[str]:
                          lambda i: f"out[{i}]")
 
 
+def _c_printer(ks: KernelSet) -> Printer:
+    """The C printer of ``ks``'s kernels: sin and cos go to the file's own (emit_trig)."""
+    return Printer("c", functions=emit_trig.function_names(ks))
+
+
 def _c_statements(ks: KernelSet, k: Kernel, load, load_param, store, steps=None, outputs=None,
                   unused_stride: bool = False, mark_unused: bool = True) -> list[str]:
     """Print a straight-line program: declarations of the inputs and parameters it reads
     (``load(i)``, ``load_param(j)`` give the C lvalue of input i and parameter j), its
     steps, and ``store(i) = output i``. steps/outputs default to the kernel's own; outputs
     given as (index, expression) pairs. Unread arguments are cast to void (mark_unused)."""
-    pr = Printer("c")
+    pr = _c_printer(ks)
     steps = k.steps if steps is None else steps
     outputs = list(enumerate(k.outputs)) if outputs is None else outputs
     used = symbols_read(steps, [e for _, e in outputs])
@@ -348,11 +353,19 @@ TILED_KERNELS = ("geodesic_rhs", "hamilton_rhs")
 
 @dataclass(frozen=True)
 class _Split:
-    """A kernel cut in two for tiled loops. The IR gives every library call (sin, exp, ...)
-    a step of its own (kernels._name_calls): ``call_steps`` are those steps and the steps
-    their arguments need; ``steps`` and ``outputs`` are the rest, reading each call's value
-    from its symbol (``calls``, in order)."""
+    """A kernel cut up for tiled loops. The IR gives every library call (sin, exp, ...) a
+    step of its own (kernels._name_calls); ``calls`` are those steps' targets, whose values
+    the arithmetic reads from the tile's call buffer (slot = position in ``calls``).
+
+    ``vector_calls`` are the sin and cos calls whose arguments need no other call: they run
+    in a vectorised loop, as (slot, function name, argument), after ``vector_steps`` (the
+    arithmetic their arguments need). ``scalar_calls`` are the slots of the other calls,
+    which run in a plain loop after ``call_steps`` (the steps they need, their own
+    included). ``steps`` and ``outputs`` are the rest of the kernel."""
     calls: tuple
+    vector_calls: tuple
+    vector_steps: tuple
+    scalar_calls: tuple
     call_steps: tuple
     steps: tuple
     outputs: tuple
@@ -361,51 +374,92 @@ class _Split:
 def _split_calls(k: Kernel) -> _Split:
     """Separate a kernel's library calls from its arithmetic.
 
-    The calls run in a scalar loop over a tile (with the steps their arguments need); the
-    arithmetic, now free of calls, runs in a loop the compiler vectorises. Both print the
-    single-state kernel's own statements, so the results are bit-identical.
+    Every part prints the single-state kernel's own statements (sin and cos through the same
+    polynomial), so the results are bit-identical.
     """
-    call_targets = tuple(st.target for st in k.steps
-                         if isinstance(st, Assign) and is_library_call(st.expr))
+    call_steps_by_target = {st.target: st for st in k.steps
+                            if isinstance(st, Assign) and is_library_call(st.expr)}
     outputs = tuple(enumerate(k.outputs))
-    rest = [st for st in k.steps if not (isinstance(st, Assign) and st.target in call_targets)]
+    rest = [st for st in k.steps
+            if not (isinstance(st, Assign) and st.target in call_steps_by_target)]
     steps = live_steps(rest, symbols_read((), k.outputs))
     used_calls = symbols_read(steps, k.outputs)
-    calls = tuple(t for t in call_targets if t in used_calls)
-    call_steps = live_steps(list(k.steps), set(calls))
-    return _Split(calls, tuple(call_steps), tuple(steps), outputs)
+    calls = tuple(t for t in call_steps_by_target if t in used_calls)
+    vector, vector_needs, scalar = [], set(), []
+    for slot, target in enumerate(calls):
+        expr = call_steps_by_target[target].expr
+        if emit_trig.is_trig_call(expr) and len(expr.args) == 1:
+            needs = live_steps(list(k.steps), set(expr.args[0].free_symbols))
+            if all(isinstance(st, Assign) and not is_library_call(st.expr) for st in needs):
+                vector.append((slot, type(expr).__name__, expr.args[0]))
+                vector_needs |= expr.args[0].free_symbols
+                continue
+        scalar.append(slot)
+    vector_steps = live_steps(list(k.steps), vector_needs)
+    call_steps = live_steps(list(k.steps), {calls[s] for s in scalar})
+    return _Split(calls, tuple(vector), tuple(vector_steps), tuple(scalar), tuple(call_steps),
+                  tuple(steps), outputs)
 
 
 def tile_prototype(ks: KernelSet, k: Kernel) -> str:
     P = _c_prefix(ks)
     r = f"{P}_RESTRICT"
-    return (f"static {P}_CLONES void {ks.name}_{k.name}_tile(const double *{r} in, "
-            f"size_t in_stride, const double *{r} params, size_t params_stride, "
-            f"double *{r} out, size_t out_stride)")
+    return (f"static {P}_CLONES void {ks.name}_{k.name}_tile(const double *{r} y, size_t n, "
+            f"int aos, const double *{r} params, size_t params_stride, double *{r} out)")
 
 
 def _tile_body(ks: KernelSet, k: Kernel) -> list[str]:
-    """One tile of {P}_TILE states, structure of arrays: input c of state j at
-    in[c*in_stride + j], its parameters at params + j*params_stride, output c at
-    out[c*out_stride + j]. The library calls run in their own loop; the arithmetic, free of
-    calls, in a loop the compiler vectorises."""
+    """One tile of {P}_TILE states. y and out point at the tile's first state of arrays of n
+    states, laid out as y[n][size] when aos, else y[size][n]; its parameters are at
+    params + j*params_stride. The tile is copied into a local buffer (in[c*TILE + j]) and
+    the results go through one, so every loop over j has constant strides and vectorises.
+    sin and cos run in a vectorised loop, the other library calls in a plain one, and the
+    arithmetic, free of calls, in a vectorised loop."""
     P = _c_prefix(ks)
     split = _split_calls(k)
-    inp = lambda c: f"in[{c} * in_stride + j]"                 # noqa: E731
+    n_in, n_out = len(k.input_symbols), k.output_size
+    inp = lambda c: f"in[{c} * {P}_TILE + j]"                  # noqa: E731
     par = lambda q: f"params[{q} + j * params_stride]"         # noqa: E731
-    # results go to a local buffer first: stores through out with a run-time stride could
-    # overlap as far as the compiler knows, which would keep the loop scalar
-    res = lambda c: f"tile_res[{c}][j]"                       # noqa: E731
+    res = lambda c: f"res[{c} * {P}_TILE + j]"                 # noqa: E731
     used = k.used_symbols()
-    lines = ["size_t j;", f"double tile_res[{k.output_size}][{P}_TILE];"]
-    if not any(s in used for s in k.input_symbols):
-        lines += ["(void)in;", "(void)in_stride;"]
+    read = [c for c, s in enumerate(k.input_symbols) if s in used]
+    lines = ["size_t j;", f"double in[{n_in} * {P}_TILE], res[{n_out} * {P}_TILE];"]
+    if read:
+        lines += ["if (aos) {", f"    for (j = 0; j < {P}_TILE; ++j) {{"]
+        lines += [f"        in[{c} * {P}_TILE + j] = y[j * {n_in} + {c}];" for c in read]
+        lines += ["    }", "} else {", f"    for (j = 0; j < {P}_TILE; ++j) {{"]
+        lines += [f"        in[{c} * {P}_TILE + j] = y[{c} * n + j];" for c in read]
+        lines += ["    }", "}"]
+    else:
+        lines += ["(void)y;"]
     if not any(s in used for s in ks.param_symbols):
         lines += ["(void)params;", "(void)params_stride;"]
     if split.calls:
         lines.append(f"double tile_calls[{len(split.calls)}][{P}_TILE];")
+    if split.vector_calls:
+        poly = emit_trig.poly_names(ks)
+        args = list(dict.fromkeys(arg for _, _, arg in split.vector_calls))   # distinct
+        lines.append(f"double tile_args[{len(args)}][{P}_TILE];")
+        loop = _c_statements(ks, k, inp, par, lambda v: f"tile_args[{v}][j]",
+                             steps=split.vector_steps, outputs=list(enumerate(args)),
+                             mark_unused=False)
+        loop += [f"tile_calls[{slot}][j] = {poly[f]}(tile_args[{args.index(arg)}][j]);"
+                 for slot, f, arg in split.vector_calls]
+        lines += [f"{P}_SIMD_LOOP", f"for (j = 0; j < {P}_TILE; ++j) {{"]
+        lines += ["    " + x for x in loop] + ["}"]
+        # arguments outside the polynomial's range get libm's values, as the scalar
+        # functions give them
+        lines += [f"for (j = 0; j < {P}_TILE; ++j) {{"]
+        for v, arg in enumerate(args):
+            lines += [f"    if (!{ks.name}_trig_in_range(tile_args[{v}][j])) {{"]
+            lines += [f"        tile_calls[{slot}][j] = {f}(tile_args[{v}][j]);"
+                      for slot, f, a in split.vector_calls if a == arg]
+            lines += ["    }"]
+        lines += ["}"]
+    if split.scalar_calls:
         calls = _c_statements(ks, k, inp, par, lambda s: f"tile_calls[{s}][j]",
-                              steps=split.call_steps, outputs=list(enumerate(split.calls)),
+                              steps=split.call_steps,
+                              outputs=[(s, split.calls[s]) for s in split.scalar_calls],
                               mark_unused=False)
         # a plain loop unless the calls have vector versions (vector-math builds)
         lines += [f"{P}_CALL_LOOP", f"for (j = 0; j < {P}_TILE; ++j) {{"]
@@ -416,60 +470,41 @@ def _tile_body(ks: KernelSet, k: Kernel) -> list[str]:
                            outputs=list(split.outputs), mark_unused=False)
     lines += [f"{P}_SIMD_LOOP", f"for (j = 0; j < {P}_TILE; ++j) {{"]
     lines += ["    " + x for x in arith] + ["}"]
-    lines += [f"for (j = 0; j < {P}_TILE; ++j) {{"]
-    lines += [f"    out[{c} * out_stride + j] = tile_res[{c}][j];" for c in range(k.output_size)]
-    return lines + ["}"]
+    lines += ["if (aos) {", f"    for (j = 0; j < {P}_TILE; ++j) {{"]
+    lines += [f"        out[j * {n_out} + {c}] = res[{c} * {P}_TILE + j];" for c in range(n_out)]
+    lines += ["    }", "} else {", f"    for (j = 0; j < {P}_TILE; ++j) {{"]
+    lines += [f"        out[{c} * n + j] = res[{c} * {P}_TILE + j];" for c in range(n_out)]
+    return lines + ["    }", "}"]
 
 
-def _tiled_batch_body(ks: KernelSet, k: Kernel) -> list[str]:
-    """NAME_<kernel>_batch over y[n][size]: full tiles transposed through local buffers into
-    the tile function, the last partial tile state by state."""
+def _tiled_entry_body(ks: KernelSet, k: Kernel, aos: bool) -> list[str]:
+    """NAME_<kernel>_batch (aos: y[n][size]) or NAME_<kernel>_soa (y[size][n]): full tiles
+    through the tile function, the states of the last partial tile one by one through the
+    single-state function."""
     P = _c_prefix(ks)
     arr, n_in, n_out = k.input_name, len(k.input_symbols), k.output_size
-    used = k.used_symbols()
-    read = [c for c, s in enumerate(k.input_symbols) if s in used]
     per_state = "params + i * params_stride" if ks.parameters else "params"
-    lines = ["size_t i0, i, j;", f"const size_t full = n - n % {P}_TILE;",
-             f"double tile_in[{n_in} * {P}_TILE], tile_out[{n_out} * {P}_TILE];"]
+    first = f"i0 * {n_in}" if aos else "i0"
+    first_out = f"i0 * {n_out}" if aos else "i0"
+    lines = ["size_t i0, i;" if aos else "size_t i0, i, c;",
+             f"const size_t full = n - n % {P}_TILE;"]
     if not ks.parameters:
         lines.append("(void)params_stride;")
-    lines += [f"for (i0 = 0; i0 < full; i0 += {P}_TILE) {{"]
-    if read:
-        lines += [f"    for (j = 0; j < {P}_TILE; ++j) {{"]
-        lines += [f"        tile_in[{c} * {P}_TILE + j] = {arr}[(i0 + j) * {n_in} + {c}];"
-                  for c in read]
-        lines += ["    }"]
-    lines += [f"    {ks.name}_{k.name}_tile(tile_in, {P}_TILE, "
-              f"params + i0 * params_stride, params_stride, tile_out, {P}_TILE);",
-              f"    for (j = 0; j < {P}_TILE; ++j) {{"]
-    lines += [f"        out[(i0 + j) * {n_out} + {c}] = tile_out[{c} * {P}_TILE + j];"
-              for c in range(n_out)]
-    lines += ["    }", "}", "for (i = full; i < n; ++i)",
-              f"    {ks.name}_{k.name}({arr} + i * {n_in}, {per_state}, out + i * {n_out});"]
-    return lines
-
-
-def _tiled_soa_body(ks: KernelSet, k: Kernel) -> list[str]:
-    """NAME_<kernel>_soa over y[size][n]: full tiles in place, the last partial tile state
-    by state through the single-state function."""
-    P = _c_prefix(ks)
-    arr, n_in, n_out = k.input_name, len(k.input_symbols), k.output_size
-    per_state = "params + i * params_stride" if ks.parameters else "params"
-    lines = ["size_t i0, i, c;", f"const size_t full = n - n % {P}_TILE;",
-             f"for (i0 = 0; i0 < full; i0 += {P}_TILE)",
-             f"    {ks.name}_{k.name}_tile({arr} + i0, n, params + i0 * params_stride, "
-             "params_stride, out + i0, n);",
-             "for (i = full; i < n; ++i) {",
-             f"    double state[{n_in}], result[{n_out}];",
-             f"    for (c = 0; c < {n_in}; ++c)",
-             f"        state[c] = {arr}[c * n + i];",
-             f"    {ks.name}_{k.name}(state, {per_state}, result);",
-             f"    for (c = 0; c < {n_out}; ++c)",
-             "        out[c * n + i] = result[c];",
-             "}"]
-    if not ks.parameters:
-        lines.insert(2, "(void)params_stride;")
-    return lines
+    lines += [f"for (i0 = 0; i0 < full; i0 += {P}_TILE)",
+              f"    {ks.name}_{k.name}_tile({arr} + {first}, n, {int(aos)}, "
+              f"params + i0 * params_stride, params_stride, out + {first_out});"]
+    if aos:
+        return lines + ["for (i = full; i < n; ++i)",
+                        f"    {ks.name}_{k.name}({arr} + i * {n_in}, {per_state}, "
+                        f"out + i * {n_out});"]
+    return lines + ["for (i = full; i < n; ++i) {",
+                    f"    double state[{n_in}], result[{n_out}];",
+                    f"    for (c = 0; c < {n_in}; ++c)",
+                    f"        state[c] = {arr}[c * n + i];",
+                    f"    {ks.name}_{k.name}(state, {per_state}, result);",
+                    f"    for (c = 0; c < {n_out}; ++c)",
+                    "        out[c * n + i] = result[c];",
+                    "}"]
 
 
 def _static_solve(A: str, B: str, n: int, k: int, order, tag: int) -> list[str]:
@@ -510,15 +545,16 @@ def vector_math_block(ks: KernelSet) -> str:
     simd = '__attribute__((__simd__("notinbranch"))) extern'
     return f"""/* The batch entry points of the right-hand sides (NAME_geodesic_rhs_batch and
  * NAME_hamilton_rhs_batch over y[n][size], the _soa ones over y[size][n]) work on tiles of
- * {P}_TILE states: the library calls (sin, exp, ...) of a tile run first, in a plain loop,
- * then the arithmetic runs in a loop the compiler vectorises. Each state's results are
- * bit-identical to the single-state kernel's. With GCC on x86-64 Linux they are compiled once
+ * {P}_TILE states: sin and cos of a tile run first, in a loop the compiler vectorises (the
+ * file's own polynomial, see {ks.name}_sin), other library calls (exp, log, ...) in a plain
+ * loop, then the arithmetic runs in a vectorised loop. Each state's results are bit-identical
+ * to the single-state kernel's. With GCC on x86-64 Linux they are compiled once
  * per vector width (AVX-512, AVX2, baseline) and the widest the processor supports is picked
  * at load time; define {P}_NO_CLONES to build one version. The other kernels' batch entry
  * points loop over the single-state function (the _soa ones are plain vectorisable loops).
  * Build with -D{P}_VECTOR_MATH -O3 -fopenmp-simd -fno-builtin-sin -fno-builtin-cos and link
- * -lmvec to vectorise the calls too, with glibc's vector sin, cos, exp, log and pow
- * (documented to be within 4 ulp of the scalar functions). */
+ * -lmvec to vectorise the other calls too, with glibc's vector exp, log and pow (documented
+ * to be within 4 ulp of the scalar functions). */
 #ifndef {P}_TILE
 #define {P}_TILE {TILE}
 #endif
@@ -559,7 +595,7 @@ def soa_prototype(ks: KernelSet, k: Kernel, restrict: str) -> str:
 def c_source(ks: KernelSet, env=None, preamble: str = "") -> str:
     env = env or _environment()
     P = _c_prefix(ks)
-    helpers = []
+    helpers = [emit_trig.helpers(ks, P)] if emit_trig.uses_trig(ks) else []
     if any(isinstance(st, Solve) and st.order is None for k in ks.kernels for st in k.steps):
         helpers.append(_solve_helper(ks))
     functions = []
@@ -571,8 +607,8 @@ def c_source(ks: KernelSet, env=None, preamble: str = "") -> str:
         soa = soa_prototype(ks, k, f"{P}_RESTRICT")
         if name in TILED_KERNELS:
             functions.append({"prototype": tile_prototype(ks, k), "body": _tile_body(ks, k)})
-            functions.append({"prototype": batch, "body": _tiled_batch_body(ks, k)})
-            functions.append({"prototype": soa, "body": _tiled_soa_body(ks, k)})
+            functions.append({"prototype": batch, "body": _tiled_entry_body(ks, k, True)})
+            functions.append({"prototype": soa, "body": _tiled_entry_body(ks, k, False)})
             continue
         # The other kernels: a loop over the single-state function, and a plain
         # structure-of-arrays loop (vectorised in vector-math builds); each tiled and cloned

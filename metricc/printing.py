@@ -65,12 +65,18 @@ def _split_mul(expr: sp.Mul):
 
 
 class Printer:
-    """Print sympy expressions in ``lang`` = "c" or "numpy"."""
+    """Print sympy expressions in ``lang`` = "c" or "numpy".
 
-    def __init__(self, lang: str):
+    ``functions`` renames functions in the output, e.g. ``{"sin": "kerr_sin"}`` for the
+    generated C files' own sin (see emit.trig_helpers); the names not given keep the table's.
+    """
+
+    def __init__(self, lang: str, functions: dict | None = None):
         if lang not in ("c", "numpy"):
             raise ValueError(lang)
         self.lang = lang
+        table = _NP_FUNCS if lang == "numpy" else _C_FUNCS
+        self._functions = {**table, **(functions or {})}
 
     def __call__(self, expr) -> str:
         return self._print(as_expr(expr), 0)
@@ -174,11 +180,10 @@ class Printer:
             x = self._print(e.args[0], 0)
             return f"np.heaviside({x}, 0.5)" if self.lang == "numpy" else \
                 f"(({x}) > 0.0 ? 1.0 : (({x}) < 0.0 ? 0.0 : 0.5))"
-        table = _NP_FUNCS if self.lang == "numpy" else _C_FUNCS
-        if fname not in table:
+        if fname not in self._functions:
             raise NotImplementedError(f"cannot print function {fname}")
         args = ", ".join(self._print(a, 0) for a in e.args)
-        return f"{table[fname]}({args})"
+        return f"{self._functions[fname]}({args})"
 
 
 # Printed as libm calls a compiler cannot vectorise without a vector math library; sqrt and

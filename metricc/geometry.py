@@ -82,6 +82,10 @@ class RankOneForm:
     Then g^{-1} = C^{-1} - s m m^T / (1 + s l.m) with m = C^{-1} l (Sherman-Morrison), and
     d_k g_ab = d_k s l_a l_b + s (d_k l_a l_b + l_a d_k l_b), so the right-hand sides need
     O(dim^2) operations instead of O(dim^3). dscale[k] = d_k s; dvector[k][a] = d_k l_a.
+
+    null: l.m = l^T C^{-1} l vanishes identically (as in the Kerr-Schild form of Kerr, where
+    l is null for the flat metric); then the Sherman-Morrison denominator is 1 and
+    g^{-1} = C^{-1} - s m m^T.
     """
     constant: sp.ImmutableMatrix
     constant_inverse: sp.ImmutableMatrix
@@ -90,15 +94,24 @@ class RankOneForm:
     pivot: int
     dscale: tuple[sp.Expr, ...]
     dvector: tuple[tuple[sp.Expr, ...], ...]
+    null: bool = False
+
+    def raised_vector(self) -> list[sp.Expr]:
+        """m = C^{-1} l."""
+        n, ci = len(self.vector), self.constant_inverse
+        return [sp.Add(*[ci[a, b] * self.vector[b] for b in range(n)]) for a in range(n)]
 
     def apply_inverse(self, column: list[sp.Expr]) -> list[sp.Expr]:
         """g^{-1} w for a column w (dim expressions)."""
         n = len(column)
         ci = self.constant_inverse
-        m = [sp.Add(*[ci[a, b] * self.vector[b] for b in range(n)]) for a in range(n)]
-        lm = sp.Add(*[self.vector[a] * m[a] for a in range(n)])
+        m = self.raised_vector()
         mw = sp.Add(*[m[a] * column[a] for a in range(n)])
-        factor = self.scale * mw / (1 + self.scale * lm)
+        if self.null:
+            factor = self.scale * mw
+        else:
+            lm = sp.Add(*[self.vector[a] * m[a] for a in range(n)])
+            factor = self.scale * mw / (1 + self.scale * lm)
         return [sp.Add(*[ci[a, b] * column[b] for b in range(n)]) - m[a] * factor
                 for a in range(n)]
 
@@ -503,11 +516,34 @@ def _rank_one_form(metric: sp.ImmutableMatrix, coords, params, sampler: "_Sample
         if all(_reproduces(f, points, list(q), c_num, g, strict=k == 0)
                for k, (q, c_num, g) in enumerate(zip(param_sets, c_nums, metrics))):
             inverse = sp.ImmutableMatrix(const.inv(method="LU"))
+            null = all(_null_at(f, points, list(q), c_num)
+                       for q, c_num in zip(param_sets, c_nums))
             return RankOneForm(
                 constant=const, constant_inverse=inverse, scale=s, vector=vector, pivot=p,
                 dscale=tuple(sp.diff(s, x) for x in coords),
-                dvector=tuple(tuple(sp.diff(e, x) for e in vector) for x in coords))
+                dvector=tuple(tuple(sp.diff(e, x) for e in vector) for x in coords),
+                null=null)
     return None
+
+
+NULL_TOLERANCE = 1e-11      # |l^T C^-1 l| relative to sum |l_a C^-1_ab l_b|
+
+
+def _null_at(f, points, values, c_num) -> bool:
+    """Is l^T C^{-1} l zero (to rounding) at every finite sample point, for parameter values?
+
+    sympy cannot always prove it (in Kerr-Schild coordinates r is a root of a quartic), and
+    an expression that is not identically zero is not this small at hundreds of random
+    points of the domain, so the samples decide; an exact symbolic zero passes too."""
+    with np.errstate(all="ignore"):
+        vals = [np.broadcast_to(np.asarray(v, dtype=float), (len(points),))
+                for v in f(points.T, values)]
+        l_num = np.stack(vals[1:], axis=-1)
+        ci = np.linalg.inv(c_num)
+        lm = np.einsum("ma,ab,mb->m", l_num, ci, l_num)
+        size = np.einsum("ma,ab,mb->m", np.abs(l_num), np.abs(ci), np.abs(l_num))
+        finite = np.isfinite(lm) & np.isfinite(size)
+    return bool(np.any(finite) and np.all(np.abs(lm[finite]) <= NULL_TOLERANCE * size[finite]))
 
 
 def _reproduces(f, points, values, c_num, g, strict: bool) -> bool:

@@ -111,6 +111,10 @@ def _inverse(geo: Geometry):
 
 
 def _inverse_note(geo: Geometry) -> str:
+    if geo.rank_one is not None and geo.rank_one.null:
+        return ("a rank-one update of a constant metric C + s l l^T with l null for C "
+                "(l.m = 0 at every sample point), inverted in closed form as C^-1 - s m m^T, "
+                "m = C^-1 l")
     if geo.rank_one is not None:
         return ("a rank-one update of a constant metric C + s l l^T, inverted in closed form "
                 "as C^-1 - s m m^T/(1 + s l.m), m = C^-1 l")

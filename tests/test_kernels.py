@@ -266,6 +266,66 @@ def test_rank_one_form_against_a_direct_inverse(second):
             np.testing.assert_allclose(out[4:], force, rtol=1e-10, atol=1e-12)
 
 
+# C = diag(-1, 1, 1, 1) plus s l l^T with l = (1, n) and n a unit 3-vector field, so l is null
+# for C everywhere (l.C^-1.l = -1 + |n|^2 = 0), as in the Kerr-Schild form.
+_NULL_RANK_ONE = """
+name = "null_rank_one"
+coordinates = ["t", "x", "y", "z"]
+[parameters]
+m = 0.6
+[define]
+s = "m*exp(-(x^2 + y^2 + z^2)/4)"
+A = "x/3 + z/5"
+B = "y/2"
+[metric]
+t.t = "-1 + s"
+t.x = "s*sin(A)*cos(B)"
+t.y = "s*sin(A)*sin(B)"
+t.z = "s*cos(A)"
+x.x = "1 + s*sin(A)^2*cos(B)^2"
+x.y = "s*sin(A)^2*cos(B)*sin(B)"
+x.z = "s*sin(A)*cos(B)*cos(A)"
+y.y = "1 + s*sin(A)^2*sin(B)^2"
+y.z = "s*sin(A)*sin(B)*cos(A)"
+z.z = "1 + s*cos(A)^2"
+"""
+
+
+def test_null_rank_one_vector_is_detected_and_kernels_match_a_direct_inverse():
+    """l null for C (checked at the samples) drops the Sherman-Morrison denominator; the
+    kernels must still match numpy's inverse and sympy's derivatives of the metric written
+    out independently. The non-null vector of _RANK_ONE must not be taken for null, and
+    the Kerr-Schild l of Kerr is null (Kerr & Schild 1965; from memory)."""
+    from metricc.spec import parse_spec
+    assert derive(parse_spec(_NULL_RANK_ONE)).rank_one.null
+    assert not derive(parse_spec(_RANK_ONE.format(name="rank_one", second="0"))).rank_one.null
+    assert derive(load_spec(SPECS / "kerr_schild.toml")).rank_one.null
+    t, x, y, z = xs = sp.symbols("t x y z", real=True)
+    s = sp.Rational(3, 5) * sp.exp(-(x**2 + y**2 + z**2) / 4)
+    A, B = x / 3 + z / 5, y / 2
+    l = [1, sp.sin(A) * sp.cos(B), sp.sin(A) * sp.sin(B), sp.cos(A)]
+    g = sp.diag(-1, 1, 1, 1) + s * sp.Matrix(4, 4, lambda a, b: l[a] * l[b])
+    rng = np.random.default_rng(14)
+    for backend in ("auto", "numpy"):
+        k = metricc.loads(_NULL_RANK_ONE, backend=backend)
+        for _ in range(3):
+            point, u = rng.uniform(-1.5, 1.5, 4), rng.normal(size=4)
+            at = dict(zip(xs, point))
+            gnum = np.array(g.subs(at).evalf(), dtype=float)
+            dg = np.array([[[float(sp.diff(g[i, j], xs[c]).subs(at)) for c in range(4)]
+                            for j in range(4)] for i in range(4)])     # [i, j, c]
+            first = 0.5 * (dg.transpose(0, 2, 1) + dg - dg.transpose(2, 0, 1))
+            acc = -np.einsum("ad,dbc,b,c->a", np.linalg.inv(gnum), first, u, u)
+            np.testing.assert_allclose(k.inverse_metric(point), np.linalg.inv(gnum),
+                                       rtol=1e-11, atol=1e-12)
+            np.testing.assert_allclose(k.geodesic_rhs(np.concatenate([point, u]))[4:], acc,
+                                       rtol=1e-10, atol=1e-12)
+            out = k.hamilton_rhs(np.concatenate([point, gnum @ u]))
+            np.testing.assert_allclose(out[:4], u, rtol=1e-11, atol=1e-12)
+            np.testing.assert_allclose(out[4:], 0.5 * np.einsum("ijk,i,j->k", dg, u, u),
+                                       rtol=1e-10, atol=1e-12)
+
+
 def _fd_metric_derivative(k, x, h=1e-5):
     """[c, a, b] = d_c g_ab by central differences (test helper)."""
     out = []

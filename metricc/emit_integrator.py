@@ -39,6 +39,14 @@ def _aos(n: int):
     return lambda j: f"k[{j * n} + i]"
 
 
+def _error_power(name: str, expo: float, x: str) -> str:
+    """C text of x^expo for the step-size controller, as integrate.error_power computes it
+    (three square roots for DOP853's 1/8)."""
+    if expo == 0.125:
+        return f"sqrt(sqrt(sqrt({x})))"
+    return f"{name}_pow({x}, {_lit(expo)})"
+
+
 def _stages_function(name: str, P: str, tab: dict, n: int, lanes: int = LANES) -> str:
     """One attempted step for the lanes (structure of arrays: component i of lane l at
     [i * lanes + l], stage j at k + j * n * lanes): the stages, y_new and the error norm of
@@ -187,7 +195,8 @@ def integrator_context(ks) -> dict:
                  f"    return j < {nev} ? {EVENT_BASE} + j : {DOMAIN};\n}}\n")
 
     def ctl(tab):
-        return {"expo1": _lit(tab["expo1"]), "beta": _lit(tab["beta"]),
+        return {"beta": _lit(tab["beta"]),
+                "fac11": _error_power(name, tab["expo1"], "xe"),
                 "facc1": _lit(1.0 / tab["fac_min"]), "facc2": _lit(1.0 / tab["fac_max"])}
 
     steps = [stop_code] + [_stages_function(name, P, tab, n, lanes)

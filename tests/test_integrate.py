@@ -694,3 +694,18 @@ def test_thread_count_does_not_change_results(shipped):
     np.testing.assert_array_equal(one.y, many.y)
     np.testing.assert_array_equal(np.asarray(one.steps), np.asarray(many.steps))
     assert status_list(one) == status_list(many)
+
+
+def test_error_power_matches_mpmath():
+    """The step-size factor err^expo: DOP853's 1/8 by three square roots stays within 2 ulp
+    of the exact root (mpmath), and other exponents go through pow."""
+    import mpmath
+    from metricc.integrate import error_power
+    rng = np.random.default_rng(21)
+    err = 10.0 ** rng.uniform(-300, 10, 2000)
+    got = error_power(err, 0.125)
+    mpmath.mp.prec = 120
+    for e, g in zip(err, got):
+        exact = mpmath.root(mpmath.mpf(float(e)), 8)
+        assert abs(mpmath.mpf(float(g)) - exact) <= 2 * np.spacing(float(exact)), e
+    np.testing.assert_array_equal(error_power(err, 0.17), np.power(err, 0.17))

@@ -419,14 +419,25 @@ def _tile_body(ks: KernelSet, k: Kernel) -> list[str]:
     split = _split_calls(k)
     n_in, n_out = len(k.input_symbols), k.output_size
     inp = lambda c: f"in[{c} * {P}_TILE + j]"                  # noqa: E731
-    par = lambda q: f"params[{q} + j * params_stride]"         # noqa: E731
+    par = lambda q: f"par[{q} * {P}_TILE + j]"                 # noqa: E731
     res = lambda c: f"res[{c} * {P}_TILE + j]"                 # noqa: E731
     used = k.used_symbols()
     read = [c for c, s in enumerate(k.input_symbols) if s in used]
+    pread = [q for q, s in enumerate(ks.param_symbols) if s in used]
     lines = ["size_t j;", f"double in[{n_in} * {P}_TILE], res[{n_out} * {P}_TILE];"]
+    if pread:
+        # the parameters too: a run-time stride (0 for shared parameters) in the vectorised
+        # loops would make every read a gather
+        lines += [f"double par[{len(ks.param_symbols)} * {P}_TILE];",
+                  f"for (j = 0; j < {P}_TILE; ++j) {{"]
+        lines += [f"    par[{q} * {P}_TILE + j] = params[{q} + j * params_stride];"
+                  for q in pread]
+        lines += ["}"]
     if read:
+        # every component of an array-of-structures tile, used or not: a group without gaps
+        # lets the compiler load whole states and shuffle them instead of gathering
         lines += ["if (aos) {", f"    for (j = 0; j < {P}_TILE; ++j) {{"]
-        lines += [f"        in[{c} * {P}_TILE + j] = y[j * {n_in} + {c}];" for c in read]
+        lines += [f"        in[{c} * {P}_TILE + j] = y[j * {n_in} + {c}];" for c in range(n_in)]
         lines += ["    }", "} else {", f"    for (j = 0; j < {P}_TILE; ++j) {{"]
         lines += [f"        in[{c} * {P}_TILE + j] = y[{c} * n + j];" for c in read]
         lines += ["    }", "}"]

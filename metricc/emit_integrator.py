@@ -197,6 +197,7 @@ def integrator_context(ks) -> dict:
     def ctl(tab):
         return {"beta": _lit(tab["beta"]),
                 "fac11": _error_power(name, tab["expo1"], "xe"),
+                "predictive": "1" if tab["predictive"] else "0",
                 "facc1": _lit(1.0 / tab["fac_min"]), "facc2": _lit(1.0 / tab["fac_max"])}
 
     steps = [stop_code] + [_stages_function(name, P, tab, n, lanes)

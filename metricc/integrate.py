@@ -69,6 +69,7 @@ class _Tableau:
         self.c = np.array([float(v) for v in t["c"]])
         self.b = np.array([float(v) for v in t["b"]])
         self.safety, self.beta, self.expo1 = t["safety"], t["beta"], t["expo1"]
+        self.predictive = t["predictive"]
         self.facc1, self.facc2 = 1.0 / t["fac_min"], 1.0 / t["fac_max"]
         self.order = t["order"]
         if name == "dp5":
@@ -149,6 +150,7 @@ def integrate_numpy(rhs: Callable, stop: Callable | None, y0: np.ndarray, lam_en
             h[idx] = _initial_step(rhs, y[idx], f[idx], sub(idx), direction, abs(lam_end),
                                    tab.order, rtol, atol)
         facold = np.full(N, 1e-4)
+        h_prev, err_prev = np.zeros(N), np.full(N, 1e-2)   # the last accepted step's
         last_rejected = np.zeros(N, dtype=bool)
         nonfinite_trouble = np.zeros(N, dtype=bool)
         total = N
@@ -182,9 +184,6 @@ def integrate_numpy(rhs: Callable, stop: Callable | None, y0: np.ndarray, lam_en
             fac11 = error_power(np.maximum(errc, 1e-300), tab.expo1)
             fac = fac11 / np.power(facold[idx], tab.beta)
             fac = np.clip(fac / tab.safety, tab.facc2, tab.facc1)
-            h_acc = hi / fac
-            h_acc = np.where(last_rejected[idx], direction * np.minimum(np.abs(h_acc), np.abs(hi)),
-                             h_acc)
             h_rej = hi / np.minimum(tab.facc1, fac11 / tab.safety)
             h_rej = np.where(finite, h_rej, hi * 0.2)
             nonfinite_trouble[idx[~finite]] = True
@@ -261,13 +260,32 @@ def integrate_numpy(rhs: Callable, stop: Callable | None, y0: np.ndarray, lam_en
             y[a] = yn
             lam[a] = lam_reached
             f[a] = ka[tab.stages - 1]
-            h[a] = h_acc[accept]
+            quot = fac[accept]
+            if tab.predictive:
+                quot = _predictive_quotient(tab, quot, steps[a] > 1, h_prev[a], err_prev[a], ha,
+                                            err[accept])
+                h_prev[a] = ha
+                err_prev[a] = np.maximum(err[accept], 1e-2)
+            h_new = ha / quot
+            h[a] = np.where(last_rejected[a], direction * np.minimum(np.abs(h_new), np.abs(ha)),
+                            h_new)
             facold[a] = np.maximum(err[accept], 1e-4)
             last_rejected[a] = False
             nonfinite_trouble[a] = False
             finished = at_end & ~stopped
             status[a[finished]] = DONE
     return y, lam, status, steps, sample_out
+
+
+def _predictive_quotient(tab: _Tableau, quot, has_prev, h_prev, err_prev, h, err):
+    """h / h_new after an accepted step, with Gustafsson's predictive controller (K.
+    Gustafsson, ACM TOMS 20, 1994; as in Hairer & Wanner's RADAU5, Solving ODEs II, 1996):
+    the factor (h_prev / h) (err^2 / err_prev)^(1/q) / safety extrapolates the error's trend
+    from the last accepted step (h_prev, err_prev); the smaller of the two steps is taken.
+    quot: the standard quotient; has_prev: a previous accepted step exists. (m,) arrays."""
+    gus = (h_prev / h) * error_power(err * err / err_prev, tab.expo1) / tab.safety
+    gus = np.clip(gus, tab.facc2, tab.facc1)
+    return np.where(has_prev, np.maximum(quot, gus), quot)
 
 
 def _in_step(samples, lam_from, lam_to, direction) -> np.ndarray:

@@ -41,6 +41,7 @@ DP5 = {
           F(-1453857185, 822651844), F(69997945, 29380423)],
     # step-size control: safety, bounds on the factor, PI stabilisation beta
     "safety": 0.9, "fac_min": 0.2, "fac_max": 10.0, "beta": 0.04, "expo1": 0.2 - 0.04 * 0.75,
+    "predictive": False,
 }
 
 DOP853 = {
@@ -82,6 +83,10 @@ DOP853 = {
         [-25.69393346270375, 0.0, 0.0, 0.0, 0.0, -154.18974869023643, -231.5293791760455, 357.6391179106141, 93.40532418362432, -37.45832313645163, 104.0996495089623, 29.8402934266605, -43.53345659001114, 96.32455395918828, -39.17726167561544, -149.72683625798564],
     ],
     "safety": 0.9, "fac_min": 0.333, "fac_max": 6.0, "beta": 0.0, "expo1": 1.0 / 8.0,
+    # Gustafsson's predictive step-size factor (see integrate.py) on top of the standard one:
+    # DOP853's controller has no memory (beta = 0), and where the error grows from step to
+    # step at a fixed size (a photon falling in) it alternates accepted and rejected steps.
+    "predictive": True,
 }
 
 METHODS = {"dp5": DP5, "dop853": DOP853}

@@ -23,8 +23,10 @@ kernel, on the same states:
     one clone per x86-64 vector width (see handwritten/hand_common.h);
   - generated batch kernel, array of structures: `<name>_<kernel>_batch`;
   - generated structure-of-arrays kernel: `<name>_<kernel>_soa`;
+  - generated single-state kernel, one state per call: a plain loop over `<name>_<kernel>`,
+    as an integrator of one state at a time calls it;
 and reports evaluations per second and the ratio to both hand-written variants. Each figure is
-the best of --repeats runs, the four variants interleaved, the process pinned to one core.
+the best of --repeats runs, the five variants interleaved, the process pinned to one core.
 It checks that every hand-written output agrees with the generated AoS kernel's to 1e-12 (max
 over states of the largest difference divided by the state's largest component) and exits 1
 if not. It prints operation counts: generated from kernel_info[...]["ops_after"], hand-written
@@ -89,8 +91,11 @@ DRIVER = r"""
 typedef void (*hand_fn)(size_t, const double *, const double *, double *);
 typedef void (*gen_fn)(size_t, const double *, const double *, size_t, double *);
 typedef void (*params_fn)(double *);
+typedef void (*single_fn)(const double *, const double *, double *);
 @PROTOTYPES@
-static const struct { hand_fn hand, hand_simd; gen_fn aos, soa; params_fn defaults; } CASES[] = {
+static const struct {
+    hand_fn hand, hand_simd; gen_fn aos, soa; params_fn defaults; single_fn single;
+} CASES[] = {
 @TABLE@
 };
 static double now(void)
@@ -108,14 +113,14 @@ static int save(const char *dir, const char *name, const double *a, size_t count
     if (!f || fwrite(a, sizeof(double), count, f) != count) return 1;
     return fclose(f) != 0;
 }
-/* driver CASE N STATES OUTDIR REPEATS: times CASE's four variants, interleaved, on the N
+/* driver CASE N STATES OUTDIR REPEATS: times CASE's five variants, interleaved, on the N
    states in STATES; prints the best times as JSON and writes the outputs to OUTDIR. */
 int main(int argc, char **argv)
 {
     int c, repeats, rep;
     size_t n, i, k;
-    double *y, *ys, *o1, *o2, *o3, *o4, p[16];
-    double best[4] = {1e30, 1e30, 1e30, 1e30};
+    double *y, *ys, *o1, *o2, *o3, *o4, *o5, p[16];
+    double best[5] = {1e30, 1e30, 1e30, 1e30, 1e30};
     FILE *f;
     if (argc != 6) return 2;
     c = atoi(argv[1]);
@@ -127,7 +132,8 @@ int main(int argc, char **argv)
     o2 = malloc(8 * n * sizeof(double));
     o3 = malloc(8 * n * sizeof(double));
     o4 = malloc(8 * n * sizeof(double));
-    if (!y || !ys || !o1 || !o2 || !o3 || !o4) return 2;
+    o5 = malloc(8 * n * sizeof(double));
+    if (!y || !ys || !o1 || !o2 || !o3 || !o4 || !o5) return 2;
     f = fopen(argv[3], "rb");
     if (!f || fread(y, sizeof(double), 8 * n, f) != 8 * n) return 2;
     fclose(f);
@@ -138,11 +144,15 @@ int main(int argc, char **argv)
         t = now(); CASES[c].aos(n, y, p, 0, o2); t = now() - t; if (t < best[1]) best[1] = t;
         t = now(); CASES[c].soa(n, ys, p, 0, o3); t = now() - t; if (t < best[2]) best[2] = t;
         t = now(); CASES[c].hand_simd(n, y, p, o4); t = now() - t; if (t < best[3]) best[3] = t;
+        t = now();
+        for (i = 0; i < n; ++i) CASES[c].single(y + 8 * i, p, o5 + 8 * i);
+        t = now() - t; if (t < best[4]) best[4] = t;
     }
     if (save(argv[4], "hand", o1, 8 * n) || save(argv[4], "aos", o2, 8 * n)
-        || save(argv[4], "soa", o3, 8 * n) || save(argv[4], "hand_simd", o4, 8 * n)) return 3;
-    printf("{\"hand\": %.17g, \"aos\": %.17g, \"soa\": %.17g, \"hand_simd\": %.17g}\n",
-           best[0], best[1], best[2], best[3]);
+        || save(argv[4], "soa", o3, 8 * n) || save(argv[4], "hand_simd", o4, 8 * n)
+        || save(argv[4], "single", o5, 8 * n)) return 3;
+    printf("{\"hand\": %.17g, \"aos\": %.17g, \"soa\": %.17g, \"hand_simd\": %.17g, "
+           "\"single\": %.17g}\n", best[0], best[1], best[2], best[3], best[4]);
     return 0;
 }
 """
@@ -153,7 +163,8 @@ def driver_source() -> str:
     protos = "\n".join(f"void {c.hand}{v}(size_t n, const double *y, const double *p, "
                        "double *out);" for c in CASES for v in ("_batch", "_batch_simd"))
     table = ",\n".join(f"    {{{c.hand}_batch, {c.hand}_batch_simd, {c.spec}_{c.kernel}_batch, "
-                       f"{c.spec}_{c.kernel}_soa, {c.spec}_default_params}}" for c in CASES)
+                       f"{c.spec}_{c.kernel}_soa, {c.spec}_default_params, {c.spec}_{c.kernel}}}"
+                       for c in CASES)
     return (DRIVER.replace("@INCLUDES@", includes).replace("@PROTOTYPES@", protos)
             .replace("@TABLE@", table))
 
@@ -180,7 +191,7 @@ def compile_driver(tmp: Path, flags: list[str], tag: str) -> Path:
 
 
 def run_case(exe: Path, index: int, data: Path, n: int, repeats: int, outdir: Path) -> dict:
-    """Best times and outputs (n, 8) of the four variants of CASES[index]."""
+    """Best times and outputs (n, 8) of the five variants of CASES[index]."""
     outdir.mkdir(exist_ok=True)
     text = subprocess.run([str(exe), str(index), str(n), str(data), str(outdir), str(repeats)],
                           check=True, capture_output=True, text=True).stdout
@@ -189,6 +200,7 @@ def run_case(exe: Path, index: int, data: Path, n: int, repeats: int, outdir: Pa
     res["out_hand_simd"] = np.fromfile(outdir / "hand_simd.bin").reshape(n, 8)
     res["out_aos"] = np.fromfile(outdir / "aos.bin").reshape(n, 8)
     res["out_soa"] = np.fromfile(outdir / "soa.bin").reshape(8, n).T
+    res["out_single"] = np.fromfile(outdir / "single.bin").reshape(n, 8)
     return res
 
 
@@ -428,7 +440,8 @@ def pin_one_core() -> str:
 VARIANTS = (("hand", "hand-written, one state per call"),
             ("hand_simd", "hand-written, SIMD tiles"),
             ("aos", "generated, batch (AoS)"),
-            ("soa", "generated, SoA"))
+            ("soa", "generated, SoA"),
+            ("single", "generated, one state per call"))
 
 
 def table(case: Case, n: int, where: str, builds: dict, ops: tuple[int, int], numba_row) -> None:
@@ -456,7 +469,8 @@ def table(case: Case, n: int, where: str, builds: dict, ops: tuple[int, int], nu
     for tag in ("scalar", "vector"):
         r = builds[tag]
         print(f"    {tag}: hand-written {r['hand_vs_aos']:.1e}, hand SIMD "
-              f"{r['hand_simd_vs_aos']:.1e}, generated SoA {r['soa_vs_aos']:.1e}")
+              f"{r['hand_simd_vs_aos']:.1e}, generated SoA {r['soa_vs_aos']:.1e}, "
+              f"generated one state per call {r['single_vs_aos']:.1e}")
 
 
 def summary(rows: list) -> None:
@@ -518,7 +532,7 @@ def main() -> None:
             builds = {}
             for tag, exe in exes.items():
                 r = run_case(exe, index, data, args.n, args.repeats, tmp / f"out_{tag}")
-                for key in ("hand", "hand_simd", "soa"):
+                for key in ("hand", "hand_simd", "soa", "single"):
                     r[f"{key}_vs_aos"] = disagreement(r[f"out_{key}"], r["out_aos"])
                 builds[tag] = r
                 worst = max(r["hand_vs_aos"], r["hand_simd_vs_aos"])

@@ -17,11 +17,11 @@ generated files therefore carry their own, written in plain arithmetic that comp
 
 For 0 < |x| <= 2^19 the results are within 2 ulp of the exact values: tests/test_trig.py checks
 that bound against mpmath at random, large and near-multiple-of-pi/2 arguments, where the
-largest error seen is 1.34 ulp (libm's is 0.5). Zero (whose sign
-the polynomial would lose), |x| > 2^19, infinities and NaN go to libm. The scalar functions
-(``NAME_sin``) test the range and branch; the tiled batch kernels run the polynomial for a
-whole tile in a vectorised loop and then redo the out-of-range lanes with libm, which gives
-each state exactly the scalar function's bits.
+largest error seen is 1.34 ulp (libm's is 0.5). Zero (whose sign the polynomial would lose),
+|x| > 2^19, infinities and NaN go to libm. The scalar functions (``NAME_sin``) test the range
+and branch; the tiled batch kernels run the polynomial for a whole tile in a vectorised loop
+and then redo the out-of-range lanes with libm, which gives each state exactly the scalar
+function's bits.
 
 Define NAME_LIBM_TRIG to use libm's sin and cos throughout. The polynomial also steps aside by
 itself where its arithmetic would not be exact IEEE double: under -ffast-math (the
@@ -103,7 +103,8 @@ def helpers(ks, prefix: str) -> str:
     """The C text of NAME_sin, NAME_cos, their _poly versions and NAME_trig_in_range."""
     n, P = ks.name, prefix
     lit = number_literal
-    powers = ["z", "z2", "z4", "z8"]
+    powers = ["z", "z2", "z4"]                 # the C text below defines these three
+    assert max(len(_series(3, SIN_DEGREE)), len(_series(4, COS_DEGREE))) <= 2 ** len(powers)
     sin_poly = _estrin(_series(3, SIN_DEGREE), powers)   # sin r = r + r z (-1/3! + z/5! ...)
     cos_poly = _estrin(_series(4, COS_DEGREE), powers)   # cos r = 1 - z/2 + z^2 (1/4! - ...)
     return f"""/* sin and cos of the kernels: a polynomial that loops over states vectorise, within 2 ulp

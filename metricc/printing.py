@@ -68,7 +68,7 @@ class Printer:
     """Print sympy expressions in ``lang`` = "c" or "numpy".
 
     ``functions`` renames functions in the output, e.g. ``{"sin": "kerr_sin"}`` for the
-    generated C files' own sin (see emit.trig_helpers); the names not given keep the table's.
+    generated C files' own sin (see metricc.emit_trig); the names not given keep the table's.
     """
 
     def __init__(self, lang: str, functions: dict | None = None):

@@ -539,7 +539,10 @@ def _null_at(f, points, values, c_num) -> bool:
         vals = [np.broadcast_to(np.asarray(v, dtype=float), (len(points),))
                 for v in f(points.T, values)]
         l_num = np.stack(vals[1:], axis=-1)
-        ci = np.linalg.inv(c_num)
+        try:
+            ci = np.linalg.inv(c_num)
+        except np.linalg.LinAlgError:   # C singular at shifted parameters: not known null
+            return False
         lm = np.einsum("ma,ab,mb->m", l_num, ci, l_num)
         size = np.einsum("ma,ab,mb->m", np.abs(l_num), np.abs(ci), np.abs(l_num))
         finite = np.isfinite(lm) & np.isfinite(size)

@@ -170,19 +170,26 @@ class Geometry:
         Uses Gamma_{d bc} u^b u^c = (d_b g_dc - 1/2 d_d g_bc) u^b u^c, which needs one
         derivative term fewer than the textbook form. For a metric in rank-one form
         (g = C + s l l^T) the same sum is w_d = L l_d Ds + s L Dl_d + s l_d DLam
-        - 1/2 L^2 d_d s - s L Lam_d, with L = l.u, Lam_k = d_k l.u and D = u^b d_b.
+        - 1/2 L^2 d_d s - s L Lam_d, with L = l.u, Lam_k = d_k l.u and D = u^b d_b, written as
+        w_d = l_d (L Ds + s DLam) + s L u^b (d_b l_d - d_d l_b) - 1/2 L^2 d_d s: Dl_d - Lam_d
+        needs only the antisymmetric part of d_b l_d, half the products.
         """
         n, u, dg = self.dim, self.velocity, self.dmetric
         if self.rank_one is not None:
             ro = self.rank_one
             s, l, ds, dl = ro.scale, ro.vector, ro.dscale, ro.dvector
             L = sp.Add(*[l[a] * u[a] for a in range(n)])
-            lam = [sp.Add(*[dl[k][a] * u[a] for a in range(n)]) for k in range(n)]
             Ds = sp.Add(*[u[b] * ds[b] for b in range(n)])
-            Dl = [sp.Add(*[u[b] * dl[b][d] for b in range(n)]) for d in range(n)]
-            Dlam = sp.Add(*[u[b] * lam[b] for b in range(n)])
-            return tuple(L * l[d] * Ds + s * L * Dl[d] + s * l[d] * Dlam - L**2 * ds[d] / 2
-                         - s * L * lam[d] for d in range(n))
+            # Dl_d - Lam_d = u^b (d_b l_d - d_d l_b): only the antisymmetric part (the curl of
+            # l) enters, and u^b u^d d_b l_d (DLam) only the symmetric one
+            curl = {(b, d): dl[b][d] - dl[d][b] for b in range(n) for d in range(n)
+                    if b < d}
+            rot = [sp.Add(*[u[b] * (curl[(b, d)] if b < d else -curl[(d, b)])
+                            for b in range(n) if b != d]) for d in range(n)]
+            Dlam = sp.Add(*[u[b] * sp.Add(*[dl[b][a] * u[a] for a in range(n)])
+                            for b in range(n)])
+            return tuple(l[d] * (L * Ds + s * Dlam) + s * L * rot[d] - L**2 * ds[d] / 2
+                         for d in range(n))
         out = []
         for d in range(n):
             total = sp.S.Zero

@@ -192,10 +192,27 @@ z.z = "2 + s*lz^2"
 """
 
 
+_TXYZ = sp.symbols("t x y z", real=True)
+
+
+def _direct_reference(g: sp.Matrix, point, velocity):
+    """g, the geodesic acceleration -Gamma^a_bc u^b u^c and the Hamiltonian force
+    1/2 d_k g_ab u^a u^b of the sympy metric g(t, x, y, z) at point, from sympy's derivatives
+    and numpy's inverse (no metricc code involved)."""
+    at = dict(zip(_TXYZ, point))
+    gnum = np.array(g.subs(at).evalf(), dtype=float)
+    dg = np.array([[[float(sp.diff(g[i, j], _TXYZ[c]).subs(at)) for c in range(4)]
+                    for j in range(4)] for i in range(4)])       # [i, j, c] = d_c g_ij
+    first = 0.5 * (dg.transpose(0, 2, 1) + dg - dg.transpose(2, 0, 1))
+    gamma = np.einsum("ad,dbc->abc", np.linalg.inv(gnum), first)
+    u = np.asarray(velocity)
+    force = 0.5 * np.einsum("ijk,i,j->k", dg, u, u)
+    return gnum, -np.einsum("abc,b,c->a", gamma, u, u), force
+
+
 def _rank_one_reference(point, velocity, second: bool):
-    """Gamma^a_bc u^b u^c and the Hamiltonian force from sympy's derivatives of the metric
-    written out independently, with numpy's inverse (no metricc code involved)."""
-    t, x, y, z = sp.symbols("t x y z", real=True)
+    """_direct_reference for the metric of _RANK_ONE, written out independently."""
+    t, x, y, z = _TXYZ
     m = sp.Rational(7, 10)
     s = m * sp.exp(-(x**2 + y**2 + z**2) / 4)
     l = [1, sp.sin(x) / 2, y / 3, sp.cos(z) / 4]
@@ -205,16 +222,7 @@ def _rank_one_reference(point, velocity, second: bool):
     if second:
         k2 = sp.sin(t + x) ** 2 / 5
         g += sp.Matrix(4, 4, lambda a, b: k2 if a in (1, 2) and b in (1, 2) else 0)
-    xs = (t, x, y, z)
-    at = dict(zip(xs, point))
-    gnum = np.array(g.subs(at).evalf(), dtype=float)
-    dg = np.array([[[float(sp.diff(g[i, j], xs[c]).subs(at)) for c in range(4)]
-                    for j in range(4)] for i in range(4)])       # [i, j, c] = d_c g_ij
-    first = 0.5 * (dg.transpose(0, 2, 1) + dg - dg.transpose(2, 0, 1))
-    gamma = np.einsum("ad,dbc->abc", np.linalg.inv(gnum), first)
-    u = np.asarray(velocity)
-    force = 0.5 * np.einsum("ijk,i,j->k", dg, u, u)
-    return gnum, -np.einsum("abc,b,c->a", gamma, u, u), force
+    return _direct_reference(g, point, velocity)
 
 
 def test_rank_one_form_must_hold_for_other_parameter_values():
@@ -300,7 +308,7 @@ def test_null_rank_one_vector_is_detected_and_kernels_match_a_direct_inverse():
     assert derive(parse_spec(_NULL_RANK_ONE)).rank_one.null
     assert not derive(parse_spec(_RANK_ONE.format(name="rank_one", second="0"))).rank_one.null
     assert derive(load_spec(SPECS / "kerr_schild.toml")).rank_one.null
-    t, x, y, z = xs = sp.symbols("t x y z", real=True)
+    t, x, y, z = _TXYZ
     s = sp.Rational(3, 5) * sp.exp(-(x**2 + y**2 + z**2) / 4)
     A, B = x / 3 + z / 5, y / 2
     l = [1, sp.sin(A) * sp.cos(B), sp.sin(A) * sp.sin(B), sp.cos(A)]
@@ -310,20 +318,14 @@ def test_null_rank_one_vector_is_detected_and_kernels_match_a_direct_inverse():
         k = metricc.loads(_NULL_RANK_ONE, backend=backend)
         for _ in range(3):
             point, u = rng.uniform(-1.5, 1.5, 4), rng.normal(size=4)
-            at = dict(zip(xs, point))
-            gnum = np.array(g.subs(at).evalf(), dtype=float)
-            dg = np.array([[[float(sp.diff(g[i, j], xs[c]).subs(at)) for c in range(4)]
-                            for j in range(4)] for i in range(4)])     # [i, j, c]
-            first = 0.5 * (dg.transpose(0, 2, 1) + dg - dg.transpose(2, 0, 1))
-            acc = -np.einsum("ad,dbc,b,c->a", np.linalg.inv(gnum), first, u, u)
+            gnum, acc, force = _direct_reference(g, point, u)
             np.testing.assert_allclose(k.inverse_metric(point), np.linalg.inv(gnum),
                                        rtol=1e-11, atol=1e-12)
             np.testing.assert_allclose(k.geodesic_rhs(np.concatenate([point, u]))[4:], acc,
                                        rtol=1e-10, atol=1e-12)
             out = k.hamilton_rhs(np.concatenate([point, gnum @ u]))
             np.testing.assert_allclose(out[:4], u, rtol=1e-11, atol=1e-12)
-            np.testing.assert_allclose(out[4:], 0.5 * np.einsum("ijk,i,j->k", dg, u, u),
-                                       rtol=1e-10, atol=1e-12)
+            np.testing.assert_allclose(out[4:], force, rtol=1e-10, atol=1e-12)
 
 
 def _fd_metric_derivative(k, x, h=1e-5):

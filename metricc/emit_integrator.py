@@ -12,7 +12,7 @@ them is layout in ``templates/c_integrator.c.j2``. The same algorithm in NumPy i
 """
 from __future__ import annotations
 
-from .integrate import DOMAIN, EVENT_BASE, HMIN_REL, ROOT_REL_TOL
+from .integrate import DOMAIN, EVENT_BASE, HMIN_REL, ROOT_REL_TOL, sqrt_depth
 from .printing import number_literal
 from .tableaus import DOP853, DP5
 
@@ -41,10 +41,11 @@ def _aos(n: int):
 
 def _error_power(name: str, expo: float, x: str) -> str:
     """C text of x^expo for the step-size controller, as integrate.error_power computes it
-    (three square roots for DOP853's 1/8)."""
-    if expo == 0.125:
-        return f"sqrt(sqrt(sqrt({x})))"
-    return f"{name}_pow({x}, {_lit(expo)})"
+    (nested square roots for an exponent 1/2^k, such as DOP853's 1/8)."""
+    depth = sqrt_depth(expo)
+    if depth is None:
+        return f"{name}_pow({x}, {_lit(expo)})"
+    return "sqrt(" * depth + x + ")" * depth
 
 
 def _stages_function(name: str, P: str, tab: dict, n: int, lanes: int = LANES) -> str:

@@ -83,13 +83,22 @@ class _Tableau:
             self.dd = np.array(t["d"])
 
 
+def sqrt_depth(expo: float) -> int | None:
+    """k when expo = 1/2^k (k = 1, 2, 3: x**expo is k nested square roots), else None. The C
+    integrator (emit_integrator) takes the same decision."""
+    return {0.5: 1, 0.25: 2, 0.125: 3}.get(expo)
+
+
 def error_power(err: np.ndarray, expo: float) -> np.ndarray:
-    """err**expo for the step-size controller. The DOP853 exponent 1/8 is taken as three
-    square roots: they are correctly rounded everywhere, so the C integrator computes the
+    """err**expo for the step-size controller. An exponent 1/2^k (DOP853's 1/8) is taken as
+    k square roots: they are correctly rounded everywhere, so the C integrator computes the
     same bits, and in a vectorised loop instead of a pow call per state and step."""
-    if expo == 0.125:
-        return np.sqrt(np.sqrt(np.sqrt(err)))
-    return np.power(err, expo)
+    depth = sqrt_depth(expo)
+    if depth is None:
+        return np.power(err, expo)
+    for _ in range(depth):
+        err = np.sqrt(err)
+    return err
 
 
 def _combine(coeffs: np.ndarray, K: np.ndarray) -> np.ndarray:

@@ -133,6 +133,7 @@ def cmd_build(args) -> int:
         raise SpecError(f"several specs are named {', '.join(sorted(dup))!r}; their files "
                         "would overwrite each other", path=args.specs[names.index(dup.pop())],
                         key="name")
+    _refuse_symbol_clashes(results)
     if args.check:
         stale = []
         for r in results:
@@ -169,6 +170,23 @@ def cmd_build(args) -> int:
         except OSError as exc:
             raise BuildError(f"cannot write {args.depfile}: {exc.strerror or exc}") from None
     return 0
+
+
+def _refuse_symbol_clashes(results) -> None:
+    """SpecError when two specs of one build would define the same C symbol (a name that is
+    a prefix of another, such as kerr and kerr_gsl): their files could not link together."""
+    from .emit import symbol_clashes
+    headers = {r.spec.name: r.sources.files[f"{r.spec.name}.h"] for r in results
+               if f"{r.spec.name}.h" in r.sources.files}
+    clashes = symbol_clashes(headers)
+    if clashes:
+        a, b, common = clashes[0]
+        shown = ", ".join(common[:3]) + (f" and {len(common) - 3} more" if len(common) > 3 else "")
+        spec_b = next(r.spec for r in results if r.spec.name == b)
+        raise spec_b.error(f"specs {a!r} and {b!r} would both define the C symbol(s) {shown}, "
+                           "so their files cannot be linked into one program; rename one of "
+                           "them (e.g. so that neither name followed by '_' starts the other)",
+                           key="name")
 
 
 def _make_escape(path: str) -> str:

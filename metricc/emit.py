@@ -7,6 +7,7 @@ spec gives the same bytes.
 """
 from __future__ import annotations
 
+import re
 from dataclasses import dataclass
 
 import jinja2
@@ -59,6 +60,39 @@ def emit(ks: KernelSet, targets=("c", "numpy")) -> Sources:
     if "numpy" in targets:
         files[f"{ks.name}_numpy.py"] = numpy_module(ks, env)
     return Sources(ks.name, files)
+
+
+_IDENTIFIER = re.compile(r"\b[A-Za-z_][A-Za-z0-9_]*\b")
+
+
+def exported_identifiers(name: str, header: str) -> frozenset:
+    """The identifiers a generated header puts in a C program's global scope: every token of
+    the header that starts with ``<name>_`` or ``<NAME>_`` (functions, the options type,
+    macros) and its include guard.
+
+    Every symbol is the spec name plus a suffix, so two specs whose names share a prefix can
+    still clash (``kerr`` makes ``kerr_gsl_geodesic_rhs``, the GSL wrapper, and ``kerr_gsl``
+    makes it too, as its plain kernel). Comparing the actual sets catches every such case
+    without guessing which suffixes exist."""
+    upper = name.upper()
+    return frozenset(t for t in _IDENTIFIER.findall(header)
+                     if t.startswith((name + "_", upper + "_")) or t == f"METRICC_{upper}_H")
+
+
+def symbol_clashes(headers: dict) -> list[tuple[str, str, list[str]]]:
+    """Pairs of specs whose generated C symbols clash when both are built into one program.
+
+    headers: spec name -> header text. Returns (name_a, name_b, sorted clashing identifiers)
+    for each clashing pair, in a deterministic order."""
+    names = sorted(headers)
+    exported = {n: exported_identifiers(n, headers[n]) for n in names}
+    out = []
+    for i, a in enumerate(names):
+        for b in names[i + 1:]:
+            common = exported[a] & exported[b]
+            if common:
+                out.append((a, b, sorted(common)))
+    return out
 
 
 def cffi_build_script(ks: KernelSet, env=None) -> str:

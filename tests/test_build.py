@@ -130,3 +130,50 @@ def test_atomic_write_replaces_whole_file(tmp_path):
     build.atomic_write(target, "two")
     assert target.read_text() == "two"
     assert [p.name for p in tmp_path.iterdir()] == ["f.txt"]
+
+
+def _small_spec(name: str, extra: str = "") -> str:
+    return textwrap.dedent(f"""
+        name = "{name}"
+        coordinates = ["u", "v"]
+        [parameters]
+        k = 0.5
+        [metric]
+        u.u = "1 + k*v^2"
+        v.v = "1 + u^2"
+        """) + extra
+
+
+def test_specs_whose_symbols_clash_are_refused_in_one_build(tmp_path, capsys):
+    """kerr makes the GSL wrapper kerr_gsl_geodesic_rhs; a spec named kerr_gsl makes the same
+    name as its plain kernel. Built into one folder, the two could not link: refuse, write
+    nothing."""
+    from metricc.cli import main
+    (tmp_path / "kerr.toml").write_text(_small_spec("kerr"))
+    (tmp_path / "kerr_gsl.toml").write_text(_small_spec("kerr_gsl"))
+    out = tmp_path / "out"
+    rc = main(["build", str(tmp_path / "kerr.toml"), str(tmp_path / "kerr_gsl.toml"),
+               "--out", str(out), "-q"])
+    err = capsys.readouterr().err
+    assert rc == 1
+    assert "kerr_gsl_geodesic_rhs" in err and "kerr_gsl.toml:2:" in err
+    assert not out.exists()
+
+
+def test_specs_whose_macros_clash_are_refused(tmp_path, capsys):
+    """A parameter named DIM of spec 'm' gives the macro M_PARAM_DIM, which spec 'm_param'
+    defines as its dimension."""
+    from metricc.cli import main
+    (tmp_path / "a.toml").write_text(_small_spec("m").replace("k = 0.5", "k = 0.5\nDIM = 1.0"))
+    (tmp_path / "b.toml").write_text(_small_spec("m_param"))
+    rc = main(["build", str(tmp_path / "a.toml"), str(tmp_path / "b.toml"),
+               "--out", str(tmp_path / "out"), "-q"])
+    assert rc == 1 and "M_PARAM_DIM" in capsys.readouterr().err
+    # No false alarm: 'orbit' and 'orbital' share a prefix but no symbol ('orbit_' does not
+    # start 'orbital_').
+    (tmp_path / "c.toml").write_text(_small_spec("orbit"))
+    (tmp_path / "d.toml").write_text(_small_spec("orbital"))
+    assert main(["build", str(tmp_path / "c.toml"), str(tmp_path / "d.toml"),
+                 "--out", str(tmp_path / "out"), "-q", "--target", "c"]) == 0
+    assert (tmp_path / "out" / "orbital.h").is_file()
+

@@ -61,20 +61,24 @@ def _parser() -> argparse.ArgumentParser:
 
     sh = sub.add_parser("show", help="print the metric and its Christoffel symbols as text "
                         "or LaTeX")
-    sh.add_argument("spec", metavar="SPEC")
-    sh.add_argument("--format", choices=("text", "latex"), default="text")
+    sh.add_argument("spec", metavar="SPEC", help="spec file (.toml)")
+    sh.add_argument("--format", choices=("text", "latex"), default="text",
+                    help="text in the spec's expression syntax, or a LaTeX align* block "
+                         "(default text)")
     sh.add_argument("--parts", default="metric,christoffel", metavar="LIST",
                     help="comma-separated: metric, inverse_metric, christoffel, conserved, "
                          "geodesic_rhs (default metric,christoffel; 'all' for every part)")
 
     v = sub.add_parser("verify", help="self-check a spec's kernels at random points inside "
                        "its domain; exit 1 on any failure")
-    v.add_argument("specs", nargs="+", metavar="SPEC")
+    v.add_argument("specs", nargs="+", metavar="SPEC", help="spec files (.toml)")
     v.add_argument("--dir", metavar="DIR", default=None,
                    help="check the generated files in DIR (as written by metricc build) "
                         "instead of freshly generated ones")
     v.add_argument("--points", type=int, default=24, help="sample points (default 24)")
-    v.add_argument("--seed", type=int, default=1)
+    v.add_argument("--seed", type=int, default=1,
+                   help="seed of the random sample points and velocities, for reproducible "
+                        "runs (default 1)")
 
     from . import render
     render.add_parser(sub)
@@ -87,20 +91,33 @@ def _parser() -> argparse.ArgumentParser:
     g.add_argument("--lam-end", type=float, required=True, metavar="L",
                    help="affine parameter to integrate to (negative: backward)")
     g.add_argument("--output", "-o", required=True, metavar="FILE.npz",
-                   help="results: y, lam, status, steps, drift (and samples)")
+                   help="results as a NumPy .npz archive (the name must end in .npz): y, lam, "
+                        "status, steps, drift (and samples)")
     g.add_argument("--param", action="append", default=[], metavar="NAME=VALUE",
                    help="override a parameter (repeatable)")
-    g.add_argument("--form", choices=("geodesic", "hamilton"), default="geodesic")
-    g.add_argument("--method", choices=("dop853", "dp5"), default=None)
-    g.add_argument("--rtol", type=float, default=1e-10)
-    g.add_argument("--atol", type=float, default=1e-12)
-    g.add_argument("--max-steps", type=int, default=100000)
+    g.add_argument("--form", choices=("geodesic", "hamilton"), default="geodesic",
+                   help="what the states hold: geodesic = [x, u] (velocities u^mu), hamilton = "
+                        "[x, p] (covariant momenta p_mu); default geodesic")
+    g.add_argument("--method", choices=("dop853", "dp5"), default=None,
+                   help="Runge-Kutta pair: dop853 (Dormand-Prince 8(5,3), the default) or dp5 "
+                        "(5(4))")
+    g.add_argument("--rtol", type=float, default=1e-10,
+                   help="relative tolerance of the local error per step (default 1e-10)")
+    g.add_argument("--atol", type=float, default=1e-12,
+                   help="absolute tolerance of the local error per step (default 1e-12)")
+    g.add_argument("--max-steps", type=int, default=100000,
+                   help="steps per state before it stops with status max_steps "
+                        "(default 100000)")
     g.add_argument("--events", default=None, metavar="LIST",
                    help="comma-separated event names to use (default: all; '' for none)")
     g.add_argument("--samples", type=int, default=0, metavar="S",
                    help="also store S evenly spaced samples from 0 to lam_end")
-    g.add_argument("--threads", type=int, default=None)
-    g.add_argument("--backend", choices=("auto", "c", "numpy"), default="auto")
+    g.add_argument("--threads", type=int, default=None,
+                   help="most threads the C integrator uses (default: as many as OpenMP "
+                        "offers; the NumPy backend runs on one)")
+    g.add_argument("--backend", choices=("auto", "c", "numpy"), default="auto",
+                   help="c (compiled), numpy, or auto: C where a compiler works, else NumPy "
+                        "(default auto)")
     g.add_argument("--progress", action=argparse.BooleanOptionalAction, default=None,
                    help="progress bar on stderr (default: when stderr is a terminal)")
     return p
@@ -282,6 +299,12 @@ def cmd_integrate(args) -> int:
         if not sep:
             raise BuildError(f"--param expects NAME=VALUE with a number (pi/2 and the like "
                              f"work), got {item!r}")
+    out = Path(args.output)
+    if out.suffix.lower() != ".npz":
+        # np.savez writes an .npz archive whatever the name says; a name like r.txt would
+        # hide a binary file behind a text suffix
+        raise BuildError(f"--output {args.output!r}: results are written as a NumPy .npz "
+                         "archive; give a file name ending in .npz")
     k = load(args.spec, backend=args.backend)
     y0 = _read_states(args.input)
     events = None if args.events is None else [e for e in args.events.split(",") if e]
@@ -295,7 +318,6 @@ def cmd_integrate(args) -> int:
                           threads=args.threads, progress=bar)
     except ValueError as exc:
         raise BuildError(str(exc)) from None
-    out = Path(args.output)
     arrays = {"y": res.y, "lam": res.lam, "status": res.status, "steps": res.steps,
               "drift": res.drift}
     if res.samples is not None:
@@ -309,11 +331,14 @@ def cmd_integrate(args) -> int:
         atomic_write(out, buf.getvalue())
     except OSError as exc:
         raise BuildError(f"cannot write {out}: {exc.strerror or exc}") from None
-    names, counts = np.unique(res.status, return_counts=True)
-    print(f"{k.name}: {len(res.lam)} states, " + ", ".join(f"{c} {n}" for n, c in
-                                                          zip(names, counts))
-          + f"; {int(res.steps.sum())} steps; max drift {np.nanmax(res.drift) if res.drift.size else 0:.2e}"
-          + f" -> {out}")
+    # a single state (input shape (2*dim,)) gives 0-d results: count them as one
+    names, counts = np.unique(np.atleast_1d(res.status), return_counts=True)
+    drift = np.atleast_1d(res.drift)
+    n = np.size(res.lam)
+    print(f"{k.name}: {n} state{'' if n == 1 else 's'}, " + ", ".join(f"{c} {s}" for s, c in
+                                                                    zip(names, counts))
+          + f"; {int(np.sum(res.steps))} steps; max drift "
+          + f"{np.nanmax(drift) if drift.size else 0:.2e} -> {out}")
     return 0
 
 

@@ -749,7 +749,9 @@ def add_parser(subparsers):
         p.add_argument("--out", "-o", required=True, metavar="FILE", help="output PNG")
         p.add_argument("--param", action="append", default=[], metavar="NAME=VALUE",
                        help="override a spec parameter (repeatable)")
-        p.add_argument("--backend", choices=("auto", "c", "numpy"), default="auto")
+        p.add_argument("--backend", choices=("auto", "c", "numpy"), default="auto",
+                       help="c (compiled), numpy, or auto: C where a compiler works, else "
+                            "NumPy (default auto)")
         p.add_argument("--progress", action=argparse.BooleanOptionalAction, default=None,
                        help="progress bar on stderr (default: when stderr is a terminal)")
 
@@ -792,7 +794,8 @@ def add_parser(subparsers):
                    help="launch angles from the first axis toward the second (default: the "
                         "full circle; write --angles=-60,60 when the first is negative)")
     f.add_argument("--samples", type=int, default=400, help="samples per geodesic (default 400)")
-    f.add_argument("--rtol", type=float, default=1e-10)
+    f.add_argument("--rtol", type=float, default=1e-10,
+                   help="integrator tolerance (default 1e-10)")
     return r
 
 

@@ -303,3 +303,93 @@ def test_python_dash_m_bad_spec(tmp_path, bad_spec):
     line = assert_one_error_line(result.stderr, bad_spec)
     assert line.startswith(f"{bad_spec}:{BAD_LINE}:{BAD_COL}: error: [metric] r.r: ")
     assert files_in(out) == []
+
+
+# -- metricc integrate -----------------------------------------------------------------------
+def _orbit_state():
+    """One Schwarzschild state (M = 1) at r = 10 in the equatorial plane, [x, u]."""
+    import numpy as np
+    return np.array([0.0, 10.0, np.pi / 2, 0.0, 1.0, 0.0, 0.0, 0.03])
+
+
+def test_integrate_single_state_npy(tmp_path, capsys):
+    import numpy as np
+    states = tmp_path / "one.npy"
+    np.save(states, _orbit_state())                      # shape (2*dim,): a single state
+    out = tmp_path / "res.npz"
+    assert main(["integrate", str(SCHWARZSCHILD), "-i", str(states), "--lam-end", "5",
+                 "-o", str(out), "--backend", "numpy", "--no-progress"]) == 0
+    printed = capsys.readouterr().out
+    assert "1 state, 1 done" in printed
+    res = np.load(out)
+    assert res["y"].shape == (8,) and res["status"].shape == ()
+    assert str(res["status"]) == "done" and float(res["lam"]) == 5.0
+
+
+def test_integrate_batch_npy_counts_states(tmp_path, capsys):
+    import numpy as np
+    states = tmp_path / "two.npy"
+    np.save(states, np.stack([_orbit_state(), _orbit_state()]))
+    out = tmp_path / "res.npz"
+    assert main(["integrate", str(SCHWARZSCHILD), "-i", str(states), "--lam-end", "5",
+                 "-o", str(out), "--backend", "numpy", "--no-progress"]) == 0
+    assert "2 states, 2 done" in capsys.readouterr().out
+    assert np.load(out)["y"].shape == (2, 8)
+
+
+@pytest.mark.parametrize("name", ["r.txt", "r", "r.npy"])
+def test_integrate_refuses_output_without_npz_suffix(tmp_path, capsys, name):
+    import numpy as np
+    states = tmp_path / "one.npy"
+    np.save(states, _orbit_state())
+    out = tmp_path / name
+    assert main(["integrate", str(SCHWARZSCHILD), "-i", str(states), "--lam-end", "5",
+                 "-o", str(out), "--backend", "numpy", "--no-progress"]) == 1
+    err = capsys.readouterr().err
+    assert err.startswith("metricc: error: --output") and ".npz" in err
+    assert len(err.splitlines()) == 1
+    assert not out.exists()
+
+
+# -- help text -------------------------------------------------------------------------------
+def test_every_option_has_help_text():
+    import argparse
+    from metricc.cli import _parser
+    missing = []
+
+    def walk(parser, prefix):
+        for action in parser._actions:
+            if isinstance(action, argparse._SubParsersAction):  # e.g. render shadow|fan
+                for name, sub in action.choices.items():
+                    walk(sub, f"{prefix} {name}".strip())
+            elif not isinstance(action, argparse._HelpAction) and not action.help:
+                missing.append(f"{prefix} {'/'.join(action.option_strings) or action.dest}")
+
+    walk(_parser(), "")
+    assert missing == []
+
+
+# -- the README's set-up commands and CI ------------------------------------------------------
+def _setup_commands() -> list[str]:
+    text = (ROOT / "README.md").read_text(encoding="utf-8")
+    section = text[text.index("## Set-up on a fresh machine"):]
+    section = section[:section.index("\n## ", 1)]
+    return re.findall(r"```sh\n(.*?)\n```", section, flags=re.S)
+
+
+def test_readme_setup_commands_install_into_a_virtual_environment():
+    # A stock Debian/Ubuntu Python refuses `pip install` outside a virtual environment
+    # (PEP 668, "externally managed environment"): each command makes (or reuses) one first.
+    commands = _setup_commands()
+    assert len(commands) == 2
+    for cmd in commands:
+        assert "\n" not in cmd                          # one copy-pasteable line
+        assert cmd.startswith("python3 -m venv .venv && . .venv/bin/activate && python -m pip install ")
+    assert "metricc build specs/kerr.toml" in commands[0]
+    assert commands[1].endswith("python -m pytest")
+
+
+def test_ci_runs_the_readme_test_command_verbatim():
+    test_command = _setup_commands()[1]
+    ci = (ROOT / ".ci" / "run").read_text(encoding="utf-8").splitlines()
+    assert test_command in ci

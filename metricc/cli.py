@@ -92,7 +92,8 @@ def _parser() -> argparse.ArgumentParser:
                    help="affine parameter to integrate to (negative: backward)")
     g.add_argument("--output", "-o", required=True, metavar="FILE.npz",
                    help="results as a NumPy .npz archive (the name must end in .npz): y, lam, "
-                        "status, steps, drift (and samples)")
+                        "status, steps, drift, invariant_drift_<name> for each of the "
+                        "spec's [invariants] (and samples, sample_lam)")
     g.add_argument("--param", action="append", default=[], metavar="NAME=VALUE",
                    help="override a parameter (repeatable)")
     g.add_argument("--form", choices=("geodesic", "hamilton"), default="geodesic",
@@ -320,6 +321,8 @@ def cmd_integrate(args) -> int:
         raise BuildError(str(exc)) from None
     arrays = {"y": res.y, "lam": res.lam, "status": res.status, "steps": res.steps,
               "drift": res.drift}
+    for name, value in res.invariant_drift.items():  # the spec's [invariants]
+        arrays[f"invariant_drift_{name}"] = value
     if res.samples is not None:
         arrays["samples"] = res.samples
         arrays["sample_lam"] = samples

@@ -393,3 +393,29 @@ def test_ci_runs_the_readme_test_command_verbatim():
     test_command = _setup_commands()[1]
     ci = (ROOT / ".ci" / "run").read_text(encoding="utf-8").splitlines()
     assert test_command in ci
+
+
+# -- the shipped Carter constant -------------------------------------------------------------
+def test_readme_carter_example_is_shipped_and_conserved_through_the_cli(tmp_path, capsys):
+    import numpy as np
+    import metricc
+    from tests.test_observers import carter_reference, kerr_bound_states
+    readme = (ROOT / "README.md").read_text(encoding="utf-8")
+    example = re.search(r"```toml\n\[invariants\]\n(carter = .*)\n```", readme).group(1)
+    kerr_path = SPECS / "kerr.toml"
+    assert example in kerr_path.read_text(encoding="utf-8").splitlines()
+    k = metricc.load(kerr_path, backend="numpy")
+    y0 = kerr_bound_states(k)[:1]                # an inclined eccentric bound orbit
+    M, a = k.parameters["M"], k.parameters["a"]
+    q0, _ = carter_reference(y0, M, a)           # Carter (1968) in closed form
+    assert q0[0] > 1.0                           # inclined: Q is far from zero
+    np.testing.assert_allclose(k.invariants(y0)["carter"], q0, rtol=1e-12)
+    states, out = tmp_path / "orbit.npy", tmp_path / "orbit.npz"
+    np.save(states, y0)
+    assert main(["integrate", str(kerr_path), "-i", str(states), "--lam-end", "400",
+                 "-o", str(out), "--backend", "numpy", "--no-progress", "--rtol", "1e-11"]) == 0
+    res = np.load(out)
+    assert list(res["status"]) == ["done"]
+    q1, _ = carter_reference(res["y"], M, a)
+    assert abs(q1[0] / q0[0] - 1) < 1e-8         # conserved along the geodesic
+    assert abs(res["invariant_drift_carter"][0] - abs(q1[0] - q0[0])) < 1e-12 * q0[0]

@@ -12,6 +12,15 @@ Publishing is atomic: a folder is built under a temporary name inside the cache 
 into place; a file is written to a temporary name and ``os.replace``d. A lock file only saves
 duplicate work when several processes build the same spec at once; a half-written entry is
 never visible.
+
+Damage is detected, not trusted: the manifest records the sha256 of every generated file and
+of the compiled binary. The binary is checked before it is loaded (a truncated shared object
+would otherwise be mapped and fault with SIGBUS, garbage or another spec's binary would fail
+to import on every load); sources are checked before they are compiled or imported. A damaged
+entry is rebuilt. Nothing in the cache is ever truncated or rewritten in place, so a process
+that already has a binary mapped keeps valid pages while it is replaced. Temporary folders of
+a builder that was killed are removed by the next builder of the same entry (it holds the
+lock, so none of them can still be in use) and, for other entries, once they are an hour old.
 """
 from __future__ import annotations
 
@@ -28,7 +37,7 @@ import sys
 import sysconfig
 import tempfile
 import time
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 from ._version import __version__
@@ -36,7 +45,12 @@ from .errors import BuildError
 from .spec import Spec
 
 MANIFEST = "manifest.json"
-MANIFEST_FORMAT = 1
+# 2: per-file sha256 ("sources") and the binary's sha256
+MANIFEST_FORMAT = 2
+# Where a verified binary's file identity is remembered (see _binary_ok).
+STAMP = ".verified.json"
+# Temporary folders in the cache root older than this belong to a dead builder.
+STALE_SECONDS = 3600
 # The integrator's translation unit: -O2 compiles it in half the time of -O3, and its loops
 # over the lanes (fixed trip counts) vectorise all the same.
 INTEGRATOR_FLAGS = ["-O2"]
@@ -120,9 +134,14 @@ def _lock(path: Path):
 
 @dataclass(frozen=True)
 class CacheEntry:
-    """One spec's folder in the cache and its manifest."""
+    """One spec's folder in the cache and its manifest.
+
+    origin: (spec, options) for entries of the cache proper, so a damaged entry can be
+    regenerated; None for folders made from files given by the user (``verify --dir``), whose
+    sources are taken as they are."""
     directory: Path
     manifest: dict
+    origin: tuple | None = field(default=None, compare=False, repr=False)
 
     @property
     def has_binary(self) -> bool:
@@ -148,7 +167,75 @@ def lookup(spec: Spec, options: dict | None = None) -> CacheEntry | None:
     """The cache entry of a spec if it exists (no sympy, no compiler)."""
     directory = cache_root() / spec_key(spec, options)[:32]
     m = _read_manifest(directory)
-    return CacheEntry(directory, m) if m is not None else None
+    return CacheEntry(directory, m, (spec, options)) if m is not None else None
+
+
+def file_sha256(path: Path) -> str:
+    with open(path, "rb") as f:
+        return hashlib.file_digest(f, "sha256").hexdigest()
+
+
+def damaged_sources(entry: CacheEntry, names) -> list[str]:
+    """Those of the generated files ``names`` that are missing or differ from the sha256
+    recorded when the entry was published (none for entries without an origin)."""
+    recorded = entry.manifest.get("sources") or {}
+    if entry.origin is None:
+        return []
+    bad = []
+    for name in names:
+        try:
+            ok = file_sha256(entry.path(name)) == recorded.get(name)
+        except OSError:
+            ok = False
+        if not ok:
+            bad.append(name)
+    return bad
+
+
+def _discard(directory: Path) -> None:
+    """Remove a cache folder: renamed away first (atomic for readers), then deleted. Files are
+    unlinked, never truncated, so a process that has a binary of it mapped is unaffected."""
+    trash = directory.parent / f".trash-{directory.name}-{os.getpid()}-{time.monotonic_ns()}"
+    try:
+        os.rename(directory, trash)
+    except OSError:
+        return
+    shutil.rmtree(trash, ignore_errors=True)
+
+
+def _remove_stale(root: Path, own_prefix: str) -> None:
+    """Remove temporary folders of dead builders in the cache root: those named
+    ``own_prefix*`` (the caller holds the lock they were made under) at any age, other
+    ``.build-*``/``.trash-*`` folders once older than STALE_SECONDS."""
+    now = time.time()
+    try:
+        items = list(os.scandir(root))
+    except OSError:
+        return
+    for item in items:
+        if not item.name.startswith((".build-", ".trash-")):
+            continue
+        try:
+            if not item.is_dir(follow_symlinks=False):
+                continue
+            if item.name.startswith(own_prefix) or now - item.stat().st_mtime > STALE_SECONDS:
+                shutil.rmtree(item.path, ignore_errors=True)
+        except OSError:
+            continue
+
+
+def regenerate(entry: CacheEntry) -> CacheEntry:
+    """Replace a damaged cache entry by freshly generated sources (the binary is compiled
+    again on demand). Raises BuildError for entries without an origin."""
+    if entry.origin is None:
+        raise BuildError(f"generated files in {entry.directory} are damaged")
+    spec, options = entry.origin
+    with _lock(entry.directory.parent / f".{entry.directory.name}.lock"):
+        m = _read_manifest(entry.directory)
+        fresh = CacheEntry(entry.directory, m, entry.origin) if m is not None else None
+        if fresh is None or damaged_sources(fresh, fresh.manifest.get("sources") or ["?"]):
+            _discard(entry.directory)
+    return ensure_sources(spec, options)
 
 
 def ensure_sources(spec: Spec, options: dict | None = None) -> CacheEntry:
@@ -164,13 +251,16 @@ def ensure_sources(spec: Spec, options: dict | None = None) -> CacheEntry:
         entry = lookup(spec, options)
         if entry is not None:
             return entry
+        _remove_stale(root, f".build-{key[:32]}-")
         from .pipeline import generate  # imports sympy: only on a miss
         result = generate(spec, extra_kernels=tuple((options or {}).get("kernels", ())))
-        tmp = Path(tempfile.mkdtemp(dir=root, prefix=".build-"))
+        tmp = Path(tempfile.mkdtemp(dir=root, prefix=f".build-{key[:32]}-"))
         try:
             for name, text in result.sources.files.items():
                 atomic_write(tmp / name, text)
             manifest = manifest_of(result)
+            manifest["sources"] = {name: hashlib.sha256(text.encode("utf-8")).hexdigest()
+                                   for name, text in result.sources.files.items()}
             manifest["options"] = dict(options or {})
             atomic_write(tmp / MANIFEST, json.dumps(manifest, indent=1, sort_keys=True))
             if directory.exists():  # a stale entry (other version or format): replace it
@@ -302,14 +392,80 @@ def extension_source(entry: CacheEntry, module_name: str) -> str:
         return out.read_text(encoding="utf-8")
 
 
+def _stat_identity(path: Path) -> list[int]:
+    """What changes whenever a file's bytes may have: ctime cannot be set back from user
+    space, so any write, truncation or replacement shows."""
+    st = os.stat(path)
+    return [st.st_dev, st.st_ino, st.st_size, st.st_mtime_ns, st.st_ctime_ns]
+
+
+_VERIFIED: dict = {}
+
+
+def _binary_ok(entry: CacheEntry) -> bool:
+    """Whether the entry's binary is the one that was published (sha256 from the manifest).
+
+    Hashing costs about a millisecond per 200 KB, a good part of a warm load, so a verified
+    file's identity (device, inode, size, mtime, ctime) is remembered next to it and in the
+    process; the file is hashed again only when that identity changes."""
+    b = entry.manifest.get("binary") or {}
+    path = entry.directory / b.get("file", "?")
+    try:
+        ident = _stat_identity(path)
+    except OSError:
+        return False
+    want = b.get("sha256")
+    if not want:
+        return False
+    if _VERIFIED.get(str(path)) == (ident, want):
+        return True
+    stamp = entry.directory / STAMP
+    try:
+        if json.loads(stamp.read_text()) == {"identity": ident, "sha256": want}:
+            _VERIFIED[str(path)] = (ident, want)
+            return True
+    except (OSError, ValueError):
+        pass
+    try:
+        ok = file_sha256(path) == want
+    except OSError:
+        return False
+    if ok:
+        _VERIFIED[str(path)] = (ident, want)
+        with contextlib.suppress(OSError):  # a read-only shared cache just hashes every time
+            atomic_write(stamp, json.dumps({"identity": ident, "sha256": want}))
+    return ok
+
+
 def ensure_binary(entry: CacheEntry) -> CacheEntry:
-    """Compile the entry's extension if it has none yet; raises BuildError on failure."""
-    if entry.has_binary:
+    """Compile the entry's extension if it has none yet, or if its binary is damaged (then
+    also its sources are regenerated if they are damaged); raises BuildError on failure."""
+    if entry.has_binary and _binary_ok(entry):
         return entry
+    name = entry.manifest["name"]
+    if damaged_sources(entry, [f"{name}.h", f"{name}.c"]):
+        entry = regenerate(entry)
     with _lock(entry.directory.parent / f".{entry.directory.name}.lock"):
         m = _read_manifest(entry.directory)
-        if m is not None and CacheEntry(entry.directory, m).has_binary:
-            return CacheEntry(entry.directory, m)
+        if m is None:
+            raise BuildError(f"cache entry {entry.directory} disappeared while building")
+        current = CacheEntry(entry.directory, m, entry.origin)
+        if current.has_binary and _binary_ok(current):
+            return current
+        # We hold the entry's lock: every temporary left for it is a dead builder's.
+        _remove_stale(entry.directory.parent, f".build-{entry.directory.name}-")
+        for item in entry.directory.iterdir():
+            if item.name.startswith(".cc-") and item.is_dir():
+                shutil.rmtree(item, ignore_errors=True)
+            elif item.name.startswith(".") and item.name.endswith(".tmp"):
+                with contextlib.suppress(OSError):
+                    item.unlink()
+        if m.get("binary"):  # damaged: unlink (never truncate a file someone may have mapped)
+            with contextlib.suppress(OSError):
+                (entry.directory / m["binary"]["file"]).unlink()
+            m = dict(m, binary=None)
+            atomic_write(entry.directory / MANIFEST, json.dumps(m, indent=1, sort_keys=True))
+        entry = CacheEntry(entry.directory, m, entry.origin)
         cc = compiler_command()
         if shutil.which(cc[0]) is None:
             raise BuildError(f"no C compiler: {cc[0]!r} not found (set CC, or use "
@@ -356,13 +512,17 @@ def ensure_binary(entry: CacheEntry) -> CacheEntry:
             _run_compiler([link])
             if not out.is_file():
                 raise BuildError(f"C compiler produced no {filename}")
+            digest = file_sha256(out)
             os.replace(out, entry.directory / filename)
+            with contextlib.suppress(OSError):  # the first load need not hash it again
+                atomic_write(entry.directory / STAMP, json.dumps(
+                    {"identity": _stat_identity(entry.directory / filename), "sha256": digest}))
         m = dict(entry.manifest)
         m["binary"] = {"module": module_name, "file": filename, "key": bkey,
                        "compile_seconds": round(time.perf_counter() - t0, 3),
-                       "compiler": " ".join(cc), "openmp": bool(omp)}
+                       "compiler": " ".join(cc), "openmp": bool(omp), "sha256": digest}
         atomic_write(entry.directory / MANIFEST, json.dumps(m, indent=1, sort_keys=True))
-        return CacheEntry(entry.directory, m)
+        return CacheEntry(entry.directory, m, entry.origin)
 
 
 def _run_compiler(commands: list[list[str]]) -> None:
@@ -391,12 +551,17 @@ def _run_compiler(commands: list[list[str]]) -> None:
 
 
 def load_extension(entry: CacheEntry):
-    """Import the entry's compiled extension module (once per process)."""
+    """Import the entry's compiled extension module (once per process). The binary must match
+    its recorded sha256 (ensure_binary rebuilds it otherwise); BuildError if it does not or
+    if it is not the module of this spec."""
     b = entry.manifest["binary"]
     name = b["module"]
     if name in sys.modules:
         return sys.modules[name]
     path = entry.directory / b["file"]
+    if not _binary_ok(entry):
+        raise BuildError(f"compiled kernels {path} do not match their recorded sha256 "
+                         "(damaged cache entry)")
     loader = importlib.machinery.ExtensionFileLoader(name, str(path))
     spec = importlib.util.spec_from_file_location(name, str(path), loader=loader)
     module = importlib.util.module_from_spec(spec)
@@ -404,19 +569,31 @@ def load_extension(entry: CacheEntry):
         loader.exec_module(module)
     except ImportError as exc:
         raise BuildError(f"cannot load compiled kernels {path}: {exc}") from None
+    probe = f"{entry.manifest['name']}_default_params"
+    if not hasattr(getattr(module, "lib", None), probe):
+        raise BuildError(f"compiled kernels {path} are not those of spec "
+                         f"{entry.manifest['name']!r} (no {probe})")
     sys.modules[name] = module
     return module
 
 
 def load_numpy_module(entry: CacheEntry):
-    """Import the entry's generated NumPy module (once per process)."""
+    """Import the entry's generated NumPy module (once per process); a damaged one (sha256
+    differs from the manifest's) is regenerated first."""
     where = hashlib.sha256(str(entry.directory.resolve()).encode()).hexdigest()[:12]
     name = f"_metricc_np_{entry.manifest['spec_sha256'][:16]}_{where}"
     if name in sys.modules:
         return sys.modules[name]
-    path = entry.path(f"{entry.manifest['name']}_numpy.py")
+    filename = f"{entry.manifest['name']}_numpy.py"
+    if damaged_sources(entry, [filename]):
+        entry = regenerate(entry)
+    path = entry.path(filename)
     spec = importlib.util.spec_from_file_location(name, str(path))
     module = importlib.util.module_from_spec(spec)
-    spec.loader.exec_module(module)
+    try:
+        spec.loader.exec_module(module)
+    except Exception as exc:  # only files given by the user (verify --dir) get here unchecked
+        raise BuildError(f"cannot import generated NumPy kernels {path}: "
+                         f"{type(exc).__name__}: {exc}") from None
     sys.modules[name] = module
     return module

@@ -15,7 +15,7 @@ library call (sin, exp, ...) gets a statement of its own, so backends can batch 
 from __future__ import annotations
 
 import heapq
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import sympy as sp
 
@@ -108,12 +108,53 @@ class KernelSet:
         raise KeyError(name)
 
 
+def sech2_form(expr: sp.Expr) -> sp.Expr:
+    """``expr`` with every sum c - c*tanh(u)^2 written as c/cosh(u)^2.
+
+    sympy differentiates tanh(u) as 1 - tanh(u)^2. Where tanh saturates that difference
+    cancels: a 1-ulp change of tanh (C and NumPy may differ by one) changes it by 1e-16
+    absolute against a value of 4 exp(-2u), so 1e-6 relative at u = 12 and nothing at all
+    once tanh(u) rounds to 1 (u > 19). 1/cosh(u)^2 keeps full relative accuracy (and
+    underflows to 0, not NaN, where cosh overflows)."""
+    if not expr.has(sp.tanh):
+        return expr
+
+    def fix(add: sp.Add) -> sp.Expr:
+        terms = list(add.args)
+        for t in list(add.args):
+            for f in (t.args if t.is_Mul else (t,)):
+                if f.is_Pow and f.exp == 2 and isinstance(f.base, sp.tanh):
+                    c = -t / f                  # t = -c tanh^2: look for the +c beside it
+                    if t in terms and c in terms:
+                        terms.remove(t)
+                        terms.remove(c)
+                        terms.append(c / sp.cosh(f.base.args[0]) ** 2)
+                    break
+        return sp.Add(*terms) if len(terms) != len(add.args) else add
+
+    return expr.replace(lambda e: e.is_Add, fix)
+
+
+def _with_accurate_derivatives(geo: Geometry) -> Geometry:
+    """The geometry with its first derivatives (d_k g, and d_k s, d_k l of a rank-one form)
+    passed through :func:`sech2_form`; every later derivative is taken of these."""
+    if not any(m.has(sp.tanh) for m in geo.dmetric):
+        return geo
+    rank_one = geo.rank_one
+    if rank_one is not None:
+        rank_one = replace(rank_one, dscale=tuple(map(sech2_form, rank_one.dscale)),
+                           dvector=tuple(tuple(map(sech2_form, v)) for v in rank_one.dvector))
+    return replace(geo, dmetric=tuple(m.applyfunc(sech2_form) for m in geo.dmetric),
+                   rank_one=rank_one)
+
+
 def build_kernels(geo: Geometry, extra: tuple[str, ...] = ()) -> KernelSet:
     """Assemble and optimise every kernel of a geometry.
 
     extra: optional kernel groups to add ("curvature", "jacobian"), on top of those the spec
     asks for in its ``kernels`` key.
     """
+    geo = _with_accurate_derivatives(geo)
     spec = geo.spec
     dim = geo.dim
     x, u = geo.coords, geo.velocity

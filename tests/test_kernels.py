@@ -336,3 +336,50 @@ def _fd_metric_derivative(k, x, h=1e-5):
         e[c] = h
         out.append((k.metric(x + e) - k.metric(x - e)) / (2 * h))
     return np.array(out)
+
+
+TANH_SPEC = """
+name = "tanh_wall"
+coordinates = ["t", "x"]
+[metric]
+t.t = "-(2 + tanh(x))"
+x.x = "1 + tanh(x)/2"
+"""
+
+
+def _christoffel_mpmath(x: float):
+    """Gamma^a_{bc} = 1/2 g^{ad} (d_b g_dc + d_c g_db - d_d g_bc) at 50 digits, with the
+    derivatives by mpmath's numerical differentiation (mpmath.diff), independent of sympy."""
+    import mpmath as mp
+    mp.mp.dps = 50
+    g = [lambda s: -(2 + mp.tanh(s)), lambda s: 1 + mp.tanh(s) / 2]     # diagonal, in x only
+    gx = mp.mpf(x)
+    dg = [[mp.diff(g[0], gx), 0], [0, mp.diff(g[1], gx)]]   # d_x g_aa (d_t g = 0)
+    inv = [1 / g[0](gx), 1 / g[1](gx)]
+    out = np.zeros((2, 2, 2))
+    for a in range(2):
+        for b in range(2):
+            for c in range(2):
+                # d_b g_ac: only b = x (index 1) and a = c is non-zero
+                term = (dg[a][a] if (b == 1 and a == c) else 0) + \
+                    (dg[a][a] if (c == 1 and a == b) else 0) - \
+                    (dg[b][b] if (a == 1 and b == c) else 0)
+                out[a, b, c] = float(inv[a] * term / 2)
+    return out
+
+
+@pytest.mark.parametrize("backend", ["numpy", "c"])
+def test_tanh_derivative_keeps_relative_accuracy_where_tanh_saturates(backend):
+    """sympy differentiates tanh as 1 - tanh^2, which loses every digit once tanh rounds to
+    1 (|x| > 19) and most of them before; the kernels must use 1/cosh^2 instead."""
+    if backend == "c":
+        from tests.conftest import have_compiler
+        if not have_compiler():
+            pytest.skip("no C compiler")
+    k = metricc.loads(TANH_SPEC, backend=backend)
+    xs = [15.0, 16.5, 17.0, 18.0, 19.0, 25.0]
+    got = np.array([k.christoffel([0.0, x]) for x in xs])
+    want = np.array([_christoffel_mpmath(x) for x in xs])
+    assert np.all((want != 0) == (got != 0))
+    nz = want != 0
+    np.testing.assert_allclose(got[nz], want[nz], rtol=1e-13, atol=0)

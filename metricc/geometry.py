@@ -22,7 +22,7 @@ import numpy as np
 import sympy as sp
 
 from . import expr as ex
-from .sampling import sample_inside
+from .sampling import SIGNATURE_RTOL, SINGULAR_RTOL, sample_inside, scaled_spectrum
 from .spec import Expression, Spec
 
 MAX_EXPONENT = 64          # |n| for a numeric exponent
@@ -387,8 +387,11 @@ def _numerically_zero(expr: sp.Expr) -> bool:
     syms = sorted(expr.free_symbols, key=lambda s: s.name)
     f = sp.lambdify(syms, expr, modules="numpy")
     rng = np.random.default_rng(7)
-    with np.errstate(all="ignore"):
-        vals = np.asarray(f(*rng.uniform(0.3, 3.0, size=(len(syms), 16))), dtype=float)
+    try:
+        with np.errstate(all="ignore"):
+            vals = np.asarray(f(*rng.uniform(0.3, 3.0, size=(len(syms), 16))), dtype=float)
+    except (ArithmeticError, TypeError, ValueError):    # beyond double range: not zero
+        return False
     vals = vals[np.isfinite(vals)]
     return vals.size > 0 and bool(np.all(np.abs(vals) < 1e-12))
 
@@ -501,8 +504,7 @@ def _rank_one_form(metric: sp.ImmutableMatrix, coords, params, sampler: "_Sample
         candidates.append((sum(count_ops(e) for e in vector) + count_ops(s), p, s, vector))
     if not candidates:
         return None
-    points = sample_inside(sampler.accept, sampler.dim, RANK_ONE_SAMPLES, seed=13,
-                           moderate_first=True)
+    points = sampler.sample(RANK_ONE_SAMPLES, seed=13)
     if len(points) == 0:
         return None
     # Parameters can be changed at every call, so the form is checked at the defaults and at
@@ -513,8 +515,11 @@ def _rank_one_form(metric: sp.ImmutableMatrix, coords, params, sampler: "_Sample
     param_sets = [defaults, defaults + shift, defaults - shift * np.where(
         np.arange(len(defaults)) % 2 == 0, 1.0, -1.0)]
     const_f = sp.lambdify([params], const, modules="numpy")
-    with np.errstate(all="ignore"):
-        c_nums = [np.array(const_f(list(q)), dtype=float) for q in param_sets]
+    try:
+        with np.errstate(all="ignore"):
+            c_nums = [np.array(const_f(list(q)), dtype=float) for q in param_sets]
+    except (ArithmeticError, TypeError, ValueError):    # beyond double range: no form
+        return None
     if not np.all(np.isfinite(c_nums[0])) or abs(np.linalg.det(c_nums[0])) < 1e-12:
         return None
     metrics = [sampler.metric(points, list(q)) for q in param_sets]
@@ -542,9 +547,10 @@ def _null_at(f, points, values, c_num) -> bool:
     sympy cannot always prove it (in Kerr-Schild coordinates r is a root of a quartic), and
     an expression that is not identically zero is not this small at hundreds of random
     points of the domain, so the samples decide; an exact symbolic zero passes too."""
+    vals = _evaluate_list(f, points, values)
+    if vals is None:
+        return False
     with np.errstate(all="ignore"):
-        vals = [np.broadcast_to(np.asarray(v, dtype=float), (len(points),))
-                for v in f(points.T, values)]
         l_num = np.stack(vals[1:], axis=-1)
         try:
             ci = np.linalg.inv(c_num)
@@ -563,9 +569,10 @@ def _reproduces(f, points, values, c_num, g, strict: bool) -> bool:
     strict (the spec's defaults): every point must be finite and match. Otherwise points
     where either side is not finite (shifted parameters may leave the chart) are skipped,
     and a check with no finite point passes vacuously."""
+    vals = _evaluate_list(f, points, values)
+    if vals is None:
+        return False
     with np.errstate(all="ignore"):
-        vals = [np.broadcast_to(np.asarray(v, dtype=float), (len(points),))
-                for v in f(points.T, values)]
         s_num, l_num = vals[0], np.stack(vals[1:], axis=-1)
         model = c_num + s_num[:, None, None] * l_num[:, :, None] * l_num[:, None, :]
         finite = np.all(np.isfinite(model), axis=(1, 2)) & np.all(np.isfinite(g), axis=(1, 2))
@@ -574,6 +581,17 @@ def _reproduces(f, points, values, c_num, g, strict: bool) -> bool:
         scale = np.max(np.abs(g[finite]), axis=(1, 2))
         err = np.max(np.abs(model[finite] - g[finite]), axis=(1, 2))
     return bool(np.all(err <= RANK_ONE_TOLERANCE * scale))
+
+
+def _evaluate_list(f, points, values):
+    """f(points.T, values) -> list of (m,) float arrays, or None where evaluating raises (an
+    exact integer beyond double range in the printed code)."""
+    try:
+        with np.errstate(all="ignore"):
+            return [np.broadcast_to(np.asarray(v, dtype=float), (len(points),))
+                    for v in f(points.T, values)]
+    except (ArithmeticError, TypeError, ValueError):
+        return None
 
 
 def _rank_one_cost(form: RankOneForm) -> int:
@@ -630,13 +648,31 @@ def static_pivot_order(blocks: np.ndarray) -> tuple[int, ...] | None:
 PIVOT_SAMPLES = 4000
 
 
+def _evaluate(f, cols, values, n: int) -> np.ndarray:
+    """f(cols, values) as floats (n,). Parameters arrive as NumPy scalars, so 1/a with a = 0
+    or a^2 with a = 1e200 give inf, not a Python exception; what still raises (an exact
+    integer beyond double range in the printed code) reads as not finite."""
+    try:
+        with np.errstate(all="ignore"):
+            out = np.asarray(f(cols, values), dtype=float)
+    except (ArithmeticError, TypeError, ValueError):
+        return np.full(n, np.nan)
+    return np.broadcast_to(out, (n,)) if out.size in (1, n) else np.full(n, np.nan)
+
+
 class _Sampler:
     """The metric and the domain test as NumPy functions (default parameters), vectorised
-    over points (m, dim). Built once per derivation and shared by every numerical check."""
+    over points (m, dim). Built once per derivation and shared by every numerical check.
+
+    anchors: the scales points are drawn around (1 and the parameter defaults); region: per
+    coordinate (lo, hi) or None, from the spec's [region] table."""
 
     def __init__(self, spec: Spec, metric, domain, coords, params):
+        from .sampling import anchor_scales
         self.dim = len(coords)
-        self.defaults = [v for _, v in spec.parameters]
+        self.defaults = np.array([v for _, v in spec.parameters], dtype=float)
+        self.anchors = anchor_scales(self.defaults)
+        self.region = region_spans(spec)
         self.entries = [[sp.lambdify([coords, params], metric[i, j], modules="numpy")
                          for j in range(self.dim)] for i in range(self.dim)]
         self.domain = [sp.lambdify([coords, params], d, modules="numpy") for _, d in domain]
@@ -644,66 +680,144 @@ class _Sampler:
     def metric(self, points, params=None) -> np.ndarray:
         """g (m, dim, dim) at points (m, dim); params: parameter values (default: the spec's)."""
         cols, n = points.T, len(points)
-        values = self.defaults if params is None else params
+        values = self.defaults if params is None else np.asarray(params, dtype=float)
         g = np.empty((n, self.dim, self.dim))
-        with np.errstate(all="ignore"):
-            for i in range(self.dim):
-                for j in range(self.dim):
-                    g[:, i, j] = np.broadcast_to(np.asarray(self.entries[i][j](cols, values),
-                                                            dtype=float), n)
+        for i in range(self.dim):
+            for j in range(self.dim):
+                g[:, i, j] = _evaluate(self.entries[i][j], cols, values, n)
         return g
+
+    def inside(self, points) -> np.ndarray:
+        """(m,) bool: every [domain] expression finite and > 0."""
+        ok = np.ones(len(points), dtype=bool)
+        for f in self.domain:
+            val = _evaluate(f, points.T, self.defaults, len(points))
+            with np.errstate(invalid="ignore"):
+                ok &= np.isfinite(val) & (val > 0)
+        return ok
 
     def accept(self, points) -> np.ndarray:
         """Inside every [domain] expression (finite, > 0) with a finite metric."""
-        ok = np.ones(len(points), dtype=bool)
-        with np.errstate(all="ignore"):
-            for f in self.domain:
-                val = np.broadcast_to(np.asarray(f(points.T, self.defaults), dtype=float),
-                                      ok.shape)
-                ok &= np.isfinite(val) & (val > 0)
-        return ok & np.all(np.isfinite(self.metric(points)), axis=(1, 2))
+        return self.inside(points) & np.all(np.isfinite(self.metric(points)), axis=(1, 2))
+
+    def sample(self, n: int, seed: int) -> np.ndarray:
+        """Up to n accepted points (m, dim), moderate scales first (see sampling.py)."""
+        return sample_inside(self.accept, self.dim, n, seed=seed, anchors=self.anchors,
+                             region=self.region)
+
+
+def region_spans(spec: Spec) -> list:
+    """Per coordinate (lo, hi) from the spec's [region] table, or None."""
+    given = {name: (lo, hi) for name, lo, hi in getattr(spec, "region", ())}
+    return [given.get(c) for c in spec.coordinates]
 
 
 def _pivot_samples(sampler: _Sampler, first) -> np.ndarray:
     """The metric (m, dim, dim) at many points inside the domain (moderate coordinates first,
     where sign changes of entries such as g_tt live), plus the validation samples."""
-    pts = sample_inside(sampler.accept, sampler.dim, PIVOT_SAMPLES, seed=11,
-                        moderate_first=True)
+    pts = sampler.sample(PIVOT_SAMPLES, seed=11)
     more = sampler.metric(pts) if len(pts) else np.empty((0, sampler.dim, sampler.dim))
     return np.concatenate([first, more], axis=0)
 
 
+NEIGHBOURS = 6               # nearby points that confirm a finding holds on an open set
+
+
+def _counts(eig: np.ndarray) -> list[tuple[int, int]]:
+    return [(int(np.sum(e < 0)), int(np.sum(e > 0))) for e in eig]
+
+
+def _on_open_set(sampler: _Sampler, point, test, seed: int) -> bool:
+    """Does test(g (k, n, n)) -> bool (k,) hold at every finite nearby point (and at least
+    one)? A finding at one point that fails nearby lies on a surface (a horizon, an axis) or
+    is rounding: it is not held against the metric."""
+    from .sampling import neighbours
+    pts = neighbours(np.random.default_rng(seed), point, NEIGHBOURS, sampler.region)
+    pts = pts[sampler.accept(pts)]
+    return len(pts) > 0 and bool(np.all(test(sampler.metric(pts))))
+
+
 def _check_numerically(spec: Spec, sampler: _Sampler):
     """Check the metric at points inside the domain; return the (negative, positive)
-    eigenvalue counts and the metric at the sample points (m, dim, dim)."""
+    eigenvalue counts and the metric at the sample points (m, dim, dim).
+
+    Singular (to rounding, on the scaled matrix) or of the wrong signature is an error only
+    where it holds on an open set: at a sample point and at every nearby point checked."""
     dim = sampler.dim
-    accept = sampler.accept
-    points = sample_inside(accept, dim, SAMPLE_POINTS)
+    points = sampler.sample(SAMPLE_POINTS, seed=20261201)
     where = "[metric]" if spec.line_element is None else "line_element"
     table, key = (None, "line_element") if spec.line_element is not None else (None, "metric")
     if len(points) == 0:
-        raise spec.error("could not find points inside [domain] where the metric is finite; "
-                         "check the domain expressions (each must be > 0 inside the chart) and "
-                         "the metric", table, key)
+        raise _no_points_error(spec, sampler)
     g = sampler.metric(points)
-    seen = None
-    for p, gp in zip(points, g):
-        scale = np.prod(np.linalg.norm(gp, axis=1))
-        det = abs(np.linalg.det(gp))
-        at = ", ".join(f"{c}={v:.6g}" for c, v in zip(spec.coordinates, p))
-        if scale == 0 or det <= 1e-12 * scale:
-            raise spec.error(f"metric is singular at {at} inside the domain (det g = "
-                             f"{np.linalg.det(gp):.3g}); {where} must be invertible everywhere "
-                             "inside the domain", table, key)
-        eig = np.linalg.eigvalsh(gp)
-        counts = (int(np.sum(eig < 0)), int(np.sum(eig > 0)))
-        if spec.signature is not None:
-            want = (spec.signature.count("-"), spec.signature.count("+"))
-            if counts != want:
+    eig, rel = scaled_spectrum(g)
+    counts = _counts(eig)
+
+    def at(p):
+        return ", ".join(f"{c}={v:.6g}" for c, v in zip(spec.coordinates, p))
+
+    singular = np.flatnonzero(rel <= SINGULAR_RTOL)
+    for i in singular[:4]:
+        if len(singular) > len(points) // 2 or _on_open_set(
+                sampler, points[i], lambda gg: scaled_spectrum(gg)[1] <= SINGULAR_RTOL, 31 + i):
+            raise spec.error(
+                f"metric is singular at {at(points[i])} and nearby inside the domain (scaled "
+                f"to unit rows, its smallest |eigenvalue| is {rel[i]:.2g} of the largest); "
+                f"{where} must be invertible inside the domain", table, key)
+    clear = [c for c, r in zip(counts, rel) if r > SIGNATURE_RTOL]
+    pool = clear or [counts[int(np.argmax(rel))]]
+    seen = max(sorted(set(pool)), key=pool.count)
+    if spec.signature is not None:
+        want = (spec.signature.count("-"), spec.signature.count("+"))
+        for i in range(len(points)):
+            if rel[i] <= SIGNATURE_RTOL or counts[i] == want:
+                continue
+
+            def same(gg, c=counts[i]):
+                e, r = scaled_spectrum(gg)
+                return (r > SIGNATURE_RTOL) & np.array([x == c for x in _counts(e)])
+            if clear.count(counts[i]) > len(points) // 2 or \
+                    _on_open_set(sampler, points[i], same, 53 + i):
                 raise spec.error(
-                    f"metric has {counts[0]} negative and {counts[1]} positive eigenvalues at "
-                    f"{at}, but signature \"{spec.signature}\" asks for {want[0]} and {want[1]}",
-                    None, "signature")
-        if seen is None:
-            seen = counts
+                    f"metric has {counts[i][0]} negative and {counts[i][1]} positive "
+                    f"eigenvalues at {at(points[i])}, but signature \"{spec.signature}\" asks "
+                    f"for {want[0]} and {want[1]}", None, "signature")
+        seen = want
     return seen, g
+
+
+def _no_points_error(spec: Spec, sampler: _Sampler):
+    """Why no sample point was found: an entry that is never finite (named by its key), a
+    domain expression that is never > 0, or else both together."""
+    from .sampling import MODERATE, WIDEST, candidate_points
+    rng = np.random.default_rng(5)
+    cand = np.concatenate([candidate_points(rng, 512, sampler.dim, spread, sampler.anchors,
+                                            sampler.region) for spread in (MODERATE, WIDEST)])
+    g = sampler.metric(cand)
+    at_defaults = " with the parameter defaults" if spec.parameters else ""
+    names = spec.coordinates
+    for i in range(sampler.dim):
+        for j in range(i, sampler.dim):
+            if np.any(np.isfinite(g[:, i, j])):
+                continue
+            given = [e for (a, b), e in spec.metric if (a, b) == (i, j)]
+            e = given[0] if given else spec.line_element
+            what = "" if given else f" (the coefficient of d{names[i]}*d{names[j]})"
+            if e is not None:
+                return spec.expression_error(
+                    e, f"evaluates to infinity or NaN at every sample point{what}"
+                       f"{at_defaults} (a constant beyond double range, or a division by a "
+                       "zero?)")
+    inside = sampler.inside(cand)
+    for (name, _), f in zip(spec.domain, sampler.domain):
+        val = _evaluate(f, cand.T, sampler.defaults, len(cand))
+        with np.errstate(invalid="ignore"):
+            if not np.any(np.isfinite(val) & (val > 0)):
+                return spec.error(f"is never finite and > 0 at the sample points{at_defaults}; "
+                                  "each [domain] expression must be > 0 inside the chart "
+                                  "(a [region] table can say where to look)", "domain", name)
+    key = "line_element" if spec.line_element is not None else "metric"
+    reason = ("no point inside [domain] where the metric is finite was found" if np.any(inside)
+              else "could not find points inside [domain]")
+    return spec.error(f"{reason}; check the domain expressions (each must be > 0 inside the "
+                      "chart) and the metric, or give a [region]", None, key)

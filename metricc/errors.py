@@ -6,6 +6,31 @@ message (``path:line:column: error: ...``) that editors and build logs can jump 
 """
 from __future__ import annotations
 
+import re
+
+# Longest name shown in full in a message; longer ones are cut (a hostile spec may hold a
+# 300,000-character key, and a message should stay one readable line).
+SHOWN_NAME_LENGTH = 60
+_PLAIN = re.compile(r"[A-Za-z0-9_.\-]+")
+
+
+def quoted(name: object) -> str:
+    """``name`` in quotes as Python's repr writes it (newlines and other control characters
+    escaped, so a message stays on one line), cut to SHOWN_NAME_LENGTH characters."""
+    text = str(name)
+    if len(text) > SHOWN_NAME_LENGTH:
+        return repr(text[:SHOWN_NAME_LENGTH]) + f"... ({len(text)} characters)"
+    return repr(text)
+
+
+def shown(name: object) -> str:
+    """``name`` as is when it is plain (letters, digits, ``_ . -``) and short, else
+    :func:`quoted`: keys such as ``r.r`` read naturally, odd ones cannot break the line."""
+    text = str(name)
+    if len(text) <= SHOWN_NAME_LENGTH and _PLAIN.fullmatch(text):
+        return text
+    return quoted(text)
+
 
 class MetriccWarning(UserWarning):
     """Warnings from metricc (for example: no working C compiler, falling back to NumPy)."""
@@ -42,12 +67,14 @@ class SpecError(ValueError):
             where += f":{self.line}"
             if self.column is not None:
                 where += f":{self.column}"
-        if self.table is not None and self.key is not None:
-            place = f"[{self.table}] {self.key}: "
-        elif self.table is not None:
-            place = f"[{self.table}]: "
-        elif self.key is not None:
-            place = f"{self.key}: "
+        table = None if self.table is None else shown(self.table)
+        key = None if self.key is None else shown(self.key)
+        if table is not None and key is not None:
+            place = f"[{table}] {key}: "
+        elif table is not None:
+            place = f"[{table}]: "
+        elif key is not None:
+            place = f"{key}: "
         else:
             place = ""
         return f"{where}: error: {place}{self.reason}"

@@ -19,9 +19,12 @@ Numbers are decimal literals (``2``, ``1.01``, ``6.67e-11``), kept exact as frac
 from __future__ import annotations
 
 import math
+import operator
 import re
 from dataclasses import dataclass
 from fractions import Fraction
+
+from .errors import quoted
 
 # Functions of the language and their number of arguments.
 FUNCTIONS: dict[str, int] = {
@@ -30,6 +33,11 @@ FUNCTIONS: dict[str, int] = {
     "exp": 1, "log": 1, "sqrt": 1, "abs": 1,
 }
 CONSTANTS = ("pi",)
+
+# The arithmetic node kinds and their operations (the float evaluator here and the sympy
+# builder in metricc.geometry share them; "pow" and "neg" need care of their own).
+ARITHMETIC = {"add": operator.add, "sub": operator.sub, "mul": operator.mul,
+              "div": operator.truediv}
 
 # Bounds that keep any spec from hanging or exhausting memory.
 MAX_LENGTH = 20_000       # characters in one expression
@@ -91,14 +99,27 @@ def _tokenize(text: str) -> list[tuple[str, str, int]]:
 
 
 def _number(text: str, pos: int) -> Fraction:
+    """The exact value of a decimal literal. Leading zeros are not digits that count
+    (``0000.10`` has two), so no long digit string ever reaches int() (which refuses more
+    than 4300 digits), and the value's size is bounded however many zeros it carries."""
     mantissa, _, exponent = text.lower().partition("e")
-    digits = mantissa.replace(".", "").lstrip("0")
+    whole, _, frac = mantissa.partition(".")
+    digits = (whole + frac).lstrip("0")
     if len(digits) > MAX_DIGITS:
         raise ExprError(f"number literal has more than {MAX_DIGITS} digits", pos)
+    if not digits:
+        return Fraction(0)
+    if len(exponent.lstrip("+-").lstrip("0")) > 6:
+        raise ExprError(f"number literal exponent beyond 1e±{MAX_DECIMAL_EXPONENT}", pos)
     exp = int(exponent) if exponent else 0
     if abs(exp) > MAX_DECIMAL_EXPONENT:
         raise ExprError(f"number literal exponent beyond 1e±{MAX_DECIMAL_EXPONENT}", pos)
-    return Fraction(mantissa) * Fraction(10) ** exp
+    # value = digits * 10^scale; its size is 10^(scale + len(digits) - 1)
+    scale = exp - len(frac)
+    magnitude = scale + len(digits) - 1
+    if abs(magnitude) > MAX_DECIMAL_EXPONENT:
+        raise ExprError(f"number literal beyond 1e±{MAX_DECIMAL_EXPONENT}", pos)
+    return Fraction(int(digits)) * Fraction(10) ** scale
 
 
 class _Parser:
@@ -134,8 +155,9 @@ class _Parser:
         kind, text, pos = self.peek()
         if kind != "end":
             if kind in ("name", "num") or text == "(":
-                raise ExprError(f"unexpected {text!r}: missing operator (write 2*r, not 2r)", pos)
-            raise ExprError(f"unexpected {text!r}", pos)
+                raise ExprError(f"unexpected {quoted(text)}: missing operator (write 2*r, "
+                                "not 2r)", pos)
+            raise ExprError(f"unexpected {quoted(text)}", pos)
         return node
 
     def expr(self) -> Node:
@@ -195,7 +217,7 @@ class _Parser:
             return node
         if kind == "end":
             raise ExprError("expression ends where a value was expected", pos)
-        raise ExprError(f"unexpected {text!r} where a value was expected", pos)
+        raise ExprError(f"unexpected {quoted(text)} where a value was expected", pos)
 
     def call(self, fname: str, pos: int) -> Node:
         self.take()  # '('
@@ -234,12 +256,33 @@ def _check_calls(node: Node) -> None:
             arity = FUNCTIONS.get(n.value)
             if arity is None:
                 hint = closest(n.value, FUNCTIONS)
-                raise ExprError(f"unknown function {n.value!r}"
+                raise ExprError(f"unknown function {quoted(n.value)}"
                                 + (f" (did you mean {hint!r}?)" if hint else ""), n.pos)
             if len(n.args) != arity:
                 raise ExprError(f"{n.value}() takes {arity} argument{'s' * (arity > 1)}, "
                                 f"got {len(n.args)}", n.pos)
         stack.extend(n.args)
+
+
+def fold(tree: Node, leaf, combine):
+    """Evaluate a tree bottom-up without recursion (a flat sum of thousands of terms is a
+    tree thousands of levels deep): leaf(node) for "num" and "name" nodes, combine(node,
+    [values of its args]) for the others. Returns the root's value."""
+    stack: list[tuple[Node, bool]] = [(tree, False)]
+    values: list = []
+    while stack:
+        node, ready = stack.pop()
+        if not node.args:
+            values.append(leaf(node))
+        elif not ready:
+            stack.append((node, True))
+            stack.extend((a, False) for a in reversed(node.args))
+        else:
+            n = len(node.args)
+            args = values[-n:]
+            del values[-n:]
+            values.append(combine(node, args))
+    return values[0]
 
 
 def names(node: Node) -> list[tuple[str, int]]:
@@ -254,14 +297,27 @@ def names(node: Node) -> list[tuple[str, int]]:
     return sorted(found, key=lambda item: item[1])
 
 
+# Longest word "did you mean" looks at: names are at most 64 characters, and the edit
+# distance costs len(word) * len(candidate) per candidate.
+MAX_SUGGEST_LENGTH = 128
+
+
 def closest(word: str, candidates) -> str | None:
-    """The candidate nearest to ``word`` by edit distance, if it is plausibly a typo."""
+    """The candidate nearest to ``word`` by edit distance, if it is plausibly a typo.
+
+    Bounded work: words longer than MAX_SUGGEST_LENGTH get no suggestion, and a candidate
+    whose length differs by more than the allowed distance is skipped without computing it."""
+    if len(word) > MAX_SUGGEST_LENGTH:
+        return None
+    limit = max(1, len(word) // 3)
     best, best_d = None, None
     for cand in sorted(candidates):
+        if abs(len(cand) - len(word)) > limit:
+            continue
         d = _edit_distance(word.lower(), cand.lower())
         if best_d is None or d < best_d:
             best, best_d = cand, d
-    if best is None or best_d > max(1, len(word) // 3):
+    if best is None or best_d > limit:
         return None
     return best
 
@@ -289,35 +345,29 @@ def constant_value(text: str) -> float:
     floating point on the parsed tree; raises ExprError for a bad or non-finite value."""
     tree = parse(text)
 
-    def value(n: Node) -> float:
-        k = n.kind
-        if k == "num":
+    def leaf(n: Node) -> float:
+        if n.kind == "num":
             return float(n.value)
-        if k == "name":
-            if n.value == "pi":
-                return math.pi
-            raise ExprError(f"unknown name {n.value!r} (only numbers and pi here)", n.pos)
+        if n.value == "pi":
+            return math.pi
+        raise ExprError(f"unknown name {quoted(n.value)} (only numbers and pi here)", n.pos)
+
+    def combine(n: Node, args: list[float]) -> float:
+        k = n.kind
         if k == "call":
-            return _MATH[n.value](*[value(a) for a in n.args])
+            return _MATH[n.value](*args)
         if k == "neg":
-            return -value(n.args[0])
-        a, b = value(n.args[0]), value(n.args[1])
-        if k == "add":
-            return a + b
-        if k == "sub":
-            return a - b
-        if k == "mul":
-            return a * b
-        if k == "div":
-            return a / b
-        return math.pow(a, b)
+            return -args[0]
+        if k in ARITHMETIC:
+            return ARITHMETIC[k](*args)
+        return math.pow(*args)
 
     try:
-        result = value(tree)
-    except (ValueError, ZeroDivisionError, OverflowError) as exc:
+        result = fold(tree, leaf, combine)
+    except (ValueError, ZeroDivisionError, OverflowError, TypeError) as exc:
         if isinstance(exc, ExprError):
             raise
-        raise ExprError(f"cannot evaluate {text!r}: {exc}", 0) from None
+        raise ExprError(f"cannot evaluate {quoted(text)}: {exc}", 0) from None
     if not math.isfinite(result):
-        raise ExprError(f"{text!r} is not finite", 0)
+        raise ExprError(f"{quoted(text)} is not finite", 0)
     return result

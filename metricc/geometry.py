@@ -14,6 +14,7 @@ ever becomes an identifier in generated code.
 """
 from __future__ import annotations
 
+import time
 from dataclasses import dataclass, replace
 from itertools import permutations
 from fractions import Fraction
@@ -229,8 +230,10 @@ def derive(spec: Spec) -> Geometry:
     params = parameter_symbols(len(spec.parameters))
     env: dict[str, sp.Expr] = {name: s for name, s in zip(spec.coordinates, coords)}
     env.update({name: s for (name, _), s in zip(spec.parameters, params)})
+    budget = _Budget(spec)
     for name, e in spec.defines:
         env[name] = _to_sympy(spec, e, env)
+        budget.check(e)
 
     if spec.line_element is not None:
         metric = _metric_from_line_element(spec, env, coords)
@@ -239,10 +242,10 @@ def derive(spec: Spec) -> Geometry:
         for (i, j), e in spec.metric:
             value = _to_sympy(spec, e, env)
             entries[i][j] = entries[j][i] = value
+            budget.check(e)
         metric = sp.ImmutableMatrix(entries)
 
-    dmetric = tuple(sp.ImmutableMatrix(dim, dim, lambda i, j, k=k: sp.diff(metric[i, j], coords[k]))
-                    for k in range(dim))
+    dmetric = _derivatives(spec, metric, coords, budget)
     domain = tuple((name, _to_sympy(spec, e, env)) for name, e in spec.domain)
     events = tuple((name, _to_sympy(spec, e, env)) for name, e in spec.events)
     ignorable = tuple(k for k in range(dim)
@@ -252,6 +255,7 @@ def derive(spec: Spec) -> Geometry:
     blocks = _inverse_blocks(metric, gsyms)
     sampler = _Sampler(spec, metric, domain, coords, params)
     signature, samples = _check_numerically(spec, sampler)
+    _check_events(spec, sampler, events, coords, params)
     rank_one = None
     if any(len(b.indices) >= 3 for b in blocks):
         rank_one = _rank_one_form(metric, coords, params, sampler)
@@ -283,7 +287,88 @@ def derive(spec: Spec) -> Geometry:
 
 
 # -- expression trees -> sympy -------------------------------------------------------------
+# Work bounds of the symbolic stage. Sizes count an expression as a tree, a helper counted at
+# every place it is used: that is what sympy's diff, its assumption queries and the printers
+# traverse, and it grows exponentially when each helper uses the previous one twice (14 such
+# levels took 27 s and 16 levels over 100 s before these limits). The shipped specs stay far
+# below them (Kerr-Schild: 286 nodes per metric entry, 1,733 per derivative, depth 14).
+MAX_TREE_SIZE = 4000       # nodes of one expression of the spec, helpers substituted
+MAX_TREE_DEPTH = 60        # levels of one such expression (sympy recurses on depth)
+MAX_DERIVED_SIZE = 40_000  # nodes of one first derivative of a metric entry
+SYMBOLIC_BUDGET_S = 60.0   # wall clock for reading and differentiating the expressions
+_SAFE_INTEGER = 2 ** 53    # beyond this an exact integer has no exact double
+
+
+def tree_measure(value: sp.Basic, cap: int = 10 ** 9) -> tuple[int, int]:
+    """(size, depth) of a sympy expression counted as a tree, in time proportional to its
+    distinct subexpressions (shared ones are measured once); sizes saturate at ``cap``."""
+    memo: dict[int, tuple[int, int]] = {}
+    keep = []                       # ids stay valid while their objects are alive
+    stack = [value]
+    while stack:
+        x = stack[-1]
+        if id(x) in memo:
+            stack.pop()
+            continue
+        pending = [a for a in x.args if id(a) not in memo]
+        if pending:
+            stack.extend(pending)
+            continue
+        stack.pop()
+        size, depth = 1, 0
+        for a in x.args:
+            s, d = memo[id(a)]
+            size, depth = min(size + s, cap), max(depth, d)
+        memo[id(x)] = (size, depth + 1)
+        keep.append(x)
+    return memo[id(value)]
+
+
+class _Budget:
+    """The wall-clock backstop behind the size limits, checked between expressions."""
+
+    def __init__(self, spec: Spec):
+        self.spec = spec
+        self.end = time.monotonic() + SYMBOLIC_BUDGET_S
+
+    def check(self, e: Expression | None) -> None:
+        if time.monotonic() <= self.end:
+            return
+        reason = (f"the symbolic stage took more than {SYMBOLIC_BUDGET_S:g} s; the expressions "
+                  "are too large (introduce helpers, simplify by hand)")
+        if e is not None:
+            raise self.spec.expression_error(e, reason)
+        raise self.spec.error(reason, None, "metric")
+
+
+def _check_size(spec: Spec, e: Expression, value: sp.Basic, limit: int = MAX_TREE_SIZE,
+                what: str = "") -> None:
+    size, depth = tree_measure(value, cap=10 * limit)
+    if size > limit:
+        raise spec.expression_error(
+            e, f"expression{what} too large: {size if size < 10 * limit else 'over %d' % size} "
+               f"nodes with every helper written out (the limit is {limit}); helpers that use "
+               "the previous one several times grow exponentially")
+    if depth > MAX_TREE_DEPTH:
+        raise spec.expression_error(
+            e, f"expression{what} nested too deeply: {depth} levels with every helper written "
+               f"out (the limit is {MAX_TREE_DEPTH})")
+
+
+def _check_constants(spec: Spec, e: Expression, value: sp.Basic) -> None:
+    """Every number in the result (after sympy's own expansion: (1e300*r)^2 holds 1e600)
+    is zero or inside the range of double precision."""
+    for atom in value.atoms(sp.Rational, sp.Float):
+        if atom != 0 and not 1e-300 < abs(atom) < 1e300:
+            raise spec.expression_error(
+                e, f"builds the constant {sp.Float(atom, 3)}, outside the range of double "
+                   "precision (1e-300 to 1e300)")
+
+
 def _to_sympy(spec: Spec, e: Expression, env: dict[str, sp.Expr]) -> sp.Expr:
+    """The sympy expression of ``e`` with names from ``env``; SpecError (located at the
+    offending node where one is to blame) for values sympy or double precision cannot
+    hold, and for results beyond MAX_TREE_SIZE / MAX_TREE_DEPTH."""
     def fail(reason, node):
         return spec.expression_error(e, reason, node.pos)
 
@@ -293,34 +378,46 @@ def _to_sympy(spec: Spec, e: Expression, env: dict[str, sp.Expr]) -> sp.Expr:
                        f"{MAX_NUMBER_BITS} bits)", node)
         if value.is_Rational and value != 0 and not 1e-300 < abs(value) < 1e300:
             raise fail("constant outside the range of double precision (1e-300 to 1e300)", node)
+        if not value.is_Rational and not value.has(sp.I, sp.zoo, sp.oo, sp.nan):
+            # a constant such as exp(1000) or cos(2): evaluated once, so one that overflows
+            # or underflows double precision is named here rather than read as inf later
+            approx = value.evalf(20)
+            if approx.is_Float and approx != 0 and not 1e-300 < abs(approx) < 1e300:
+                raise fail("constant outside the range of double precision (1e-300 to 1e300)",
+                           node)
         return value
 
-    def build(node: ex.Node) -> sp.Expr:
-        k = node.kind
-        if k == "num":
+    def leaf(node: ex.Node) -> sp.Expr:
+        if node.kind == "num":
             f: Fraction = node.value
-            return sp.Rational(f.numerator, f.denominator)
-        if k == "name":
-            if node.value == "pi":
-                return sp.pi
-            return env[node.value]
+            return check_number(sp.Rational(f.numerator, f.denominator), node)
+        if node.value == "pi":
+            return sp.pi
+        return env[node.value]
+
+    def combine(node: ex.Node, args: list) -> sp.Expr:
+        k = node.kind
         if k == "call":
-            args = [build(a) for a in node.args]
-            return _FUNCS[node.value](*args)
-        if k == "neg":
-            return -build(node.args[0])
-        a, b = (build(x) for x in node.args)
-        if k == "add":
-            out = a + b
-        elif k == "sub":
-            out = a - b
-        elif k == "mul":
-            out = a * b
-        elif k == "div":
-            if b == 0:
-                raise fail("division by zero", node.args[1])
-            out = a / b
-        elif k == "pow":
+            # an exact integer beyond 2^53 inside a function has no double of its own (and
+            # NumPy refuses cos of a Python int beyond 64 bits): take its nearest double
+            args = [sp.Float(float(a)) if a.is_Integer and abs(a) > _SAFE_INTEGER else a
+                    for a in args]
+            out = _FUNCS[node.value](*args)
+        elif k == "neg":
+            out = -args[0]
+        else:
+            out = _binary(node, *args)
+        if out.is_number:
+            check_number(out, node)
+        return out
+
+    def _binary(node: ex.Node, a: sp.Expr, b: sp.Expr) -> sp.Expr:
+        k = node.kind
+        if k == "div" and b == 0:
+            raise fail("division by zero", node.args[1])
+        if k in ex.ARITHMETIC:
+            return ex.ARITHMETIC[k](a, b)
+        if k == "pow":
             if b.is_number:
                 if not b.is_real:
                     raise fail("exponent is not a real number", node.args[1])
@@ -335,20 +432,84 @@ def _to_sympy(spec: Spec, e: Expression, env: dict[str, sp.Expr]) -> sp.Expr:
                 raise fail("division by zero (zero to a negative power)", node)
             if a.is_number and a.is_negative and b.is_number and not b.is_integer:
                 raise fail("a negative number to a non-integer power is not real", node)
-            out = a ** b
-        else:  # pragma: no cover - the parser produces no other kinds
-            raise fail(f"unsupported node {k}", node)
-        if out.is_number:
-            check_number(out, node)
-        return out
+            return a ** b
+        raise fail(f"unsupported node {k}", node)  # pragma: no cover - parser makes no other
 
-    value = build(e.tree)
+    try:
+        value = ex.fold(e.tree, leaf, combine)
+        _check_size(spec, e, value)
+    except RecursionError:
+        raise spec.expression_error(
+            e, "expression nested too deeply for the symbolic stage (helpers within helpers); "
+               f"the limit is {MAX_TREE_DEPTH} levels with every helper written out") from None
     if value.has(sp.zoo, sp.oo, -sp.oo, sp.nan):
         raise spec.expression_error(e, "expression is infinite or undefined (division by zero?)")
     if value.has(sp.I) or (value.is_number and value.is_real is False):
         raise spec.expression_error(e, "expression is not real (e.g. sqrt or log of a negative "
                                        "constant)")
+    _check_constants(spec, e, value)
     return value
+
+
+def _source_of(spec: Spec, i: int, j: int) -> Expression:
+    """The spec expression that gives metric entry (i, j): its [metric] key, or line_element."""
+    for pair, e in spec.metric:
+        if pair == (min(i, j), max(i, j)):
+            return e
+    return spec.line_element if spec.line_element is not None else spec.metric[0][1]
+
+
+def _derivatives(spec: Spec, metric: sp.ImmutableMatrix, coords,
+                 budget: _Budget) -> tuple[sp.ImmutableMatrix, ...]:
+    """d_k g_ij for every k, each bounded by MAX_DERIVED_SIZE; SpecError at the entry."""
+    dim = len(coords)
+    out = []
+    for k in range(dim):
+        d = [[sp.S.Zero] * dim for _ in range(dim)]
+        for i in range(dim):
+            for j in range(i, dim):
+                if metric[i, j] == 0:
+                    continue
+                e = _source_of(spec, i, j)
+                try:
+                    d[i][j] = d[j][i] = sp.diff(metric[i, j], coords[k])
+                except RecursionError:
+                    raise spec.expression_error(
+                        e, "expression nested too deeply to differentiate") from None
+                _check_size(spec, e, d[i][j], MAX_DERIVED_SIZE,
+                            f"'s derivative by {spec.coordinates[k]}")
+                budget.check(e)
+        out.append(sp.ImmutableMatrix(d))
+    return tuple(out)
+
+
+def _check_events(spec: Spec, sampler: "_Sampler", events, coords, params) -> None:
+    """An event that is NaN at every sample point inside the domain (with the parameter
+    defaults) would stop every integration at lambda = 0: refuse it. Points where the metric
+    is finite are the validation's own; an event that cannot be evaluated at all counts as
+    NaN."""
+    if not events:
+        return
+    if hasattr(sampler, "sample"):
+        points = sampler.sample(SAMPLE_POINTS, seed=20261201)
+    else:
+        points = sample_inside(sampler.accept, sampler.dim, SAMPLE_POINTS)
+    if len(points) == 0:
+        return
+    values = np.asarray(sampler.defaults, dtype=float)
+    for (name, value), (_, e) in zip(events, spec.events):
+        f = sp.lambdify([coords, params], value, modules="numpy")
+        try:
+            with np.errstate(all="ignore"):
+                out = np.broadcast_to(np.asarray(f(points.T, values), dtype=float),
+                                      (len(points),))
+        except (ArithmeticError, TypeError, ValueError):
+            out = np.full(len(points), np.nan)
+        if np.all(np.isnan(out)):
+            raise spec.expression_error(
+                e, "the event is NaN (undefined) at every sample point inside the domain"
+                   + (" with the parameter defaults" if spec.parameters else "")
+                   + "; it would stop every integration at once")
 
 
 def _metric_from_line_element(spec: Spec, env: dict, coords) -> sp.ImmutableMatrix:

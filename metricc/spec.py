@@ -17,7 +17,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from . import expr as ex
-from .errors import SpecError
+from .errors import SpecError, quoted
 
 MIN_DIM, MAX_DIM = 2, 8
 MAX_SPEC_BYTES = 1_000_000
@@ -110,7 +110,9 @@ def load_spec(path: str | Path) -> Spec:
     """Read and validate a spec file. Raises SpecError (also for unreadable files)."""
     path = Path(path)
     try:
-        data = path.read_bytes()
+        # at most one byte more than allowed: a spec path may name /dev/zero or a pipe
+        with open(path, "rb") as f:
+            data = f.read(MAX_SPEC_BYTES + 1)
     except OSError as exc:
         raise SpecError(f"cannot read spec: {exc.strerror or exc}", path=str(path)) from None
     if len(data) > MAX_SPEC_BYTES:
@@ -130,6 +132,11 @@ def parse_spec(text: str, path: str = "<string>") -> Spec:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise _toml_error(exc, text, path) from None
+    except RecursionError:      # tomllib recurses once per level of nested arrays/tables
+        line, column = _line_col(text, _deep_nesting(text))
+        raise SpecError("invalid TOML: arrays or inline tables nested too deeply", path=path,
+                        line=line, column=column,
+                        context=_context_line(text, line, column)) from None
     return _Validator(text, path, data).run()
 
 
@@ -164,6 +171,7 @@ class _Validator:
                 hint = ex.closest(key, TOP_LEVEL_KEYS)
                 raise self.fail("unknown key" + (f" (did you mean {hint!r}?)" if hint else
                                 f"; allowed keys: {', '.join(TOP_LEVEL_KEYS)}"), None, key)
+        self.misplaced_keys()
         name = self.spec_name()
         summary = self.summary()
         coordinates = self.coordinates()
@@ -187,7 +195,7 @@ class _Validator:
         events = self.labelled_table("events", known, coordinates)
         for ev_name, e in events:
             if ev_name in RESERVED_EVENT_NAMES:
-                raise self.fail(f"event name {ev_name!r} is reserved (an integrator status)",
+                raise self.fail(f"event name {quoted(ev_name)} is reserved (an integrator status)",
                                 "events", ev_name)
         state_names = ({"d" + c for c in coordinates} | {"p_" + c for c in coordinates}
                        | {"norm"})
@@ -223,7 +231,7 @@ class _Validator:
         if len(name) > MAX_NAME_LENGTH:
             raise self.fail(f"longer than {MAX_NAME_LENGTH} characters", None, "name")
         if name in C_KEYWORDS:
-            raise self.fail(f"{name!r} is a C keyword; choose another name", None, "name")
+            raise self.fail(f"{quoted(name)} is a C keyword; choose another name", None, "name")
         return name
 
     def summary(self) -> str:
@@ -249,13 +257,13 @@ class _Validator:
         for c in coords:
             self.check_name(c, None, "coordinates")
             if c in seen:
-                raise self.fail(f"coordinate {c!r} is listed twice", None, "coordinates")
+                raise self.fail(f"coordinate {quoted(c)} is listed twice", None, "coordinates")
             seen.add(c)
         for c in coords:
             for other in coords:
                 if c == "d" + other or c == "p_" + other:
-                    raise self.fail(f"coordinate {c!r} reads as the differential or momentum "
-                                    f"of {other!r}; rename it", None, "coordinates")
+                    raise self.fail(f"coordinate {quoted(c)} reads as the differential or momentum "
+                                    f"of {quoted(other)}; rename it", None, "coordinates")
         return tuple(coords)
 
     def signature(self, dim: int) -> str | None:
@@ -276,11 +284,12 @@ class _Validator:
         for pname, value in table.items():
             self.check_name(pname, "parameters", pname)
             if pname in coords:
-                raise self.fail(f"parameter {pname!r} has the name of a coordinate", "parameters",
-                                pname)
+                raise self.fail(f"parameter {quoted(pname)} has the name of a coordinate",
+                                "parameters", pname)
+            self.check_not_state_name(pname, coords, "parameters")
             if isinstance(value, bool) or not isinstance(value, (int, float)):
                 raise self.fail(f"default must be a number, got {type(value).__name__} "
-                                f"{value!r}", "parameters", pname)
+                                f"{quoted(value)}", "parameters", pname)
             value = float(value)
             if not math.isfinite(value):
                 raise self.fail(f"default must be finite, got {value!r}", "parameters", pname)
@@ -294,20 +303,17 @@ class _Validator:
         for dname in names_in_table:
             self.check_name(dname, "define", dname)
             if dname in taken:
-                raise self.fail(f"{dname!r} is already a {taken[dname]}", "define", dname)
-            for other in coords:
-                if dname in ("d" + other, "p_" + other):
-                    raise self.fail(f"{dname!r} reads as the differential or momentum of "
-                                    f"coordinate {other!r}; rename it", "define", dname)
+                raise self.fail(f"{quoted(dname)} is already a {taken[dname]}", "define", dname)
+            self.check_not_state_name(dname, coords, "define")
         out = []
         for i, (dname, text) in enumerate(table.items()):
             e = self.expression("define", dname, text)
             for used, pos in ex.names(e.tree):
                 if used == dname:
-                    raise self.fail(f"{dname!r} is defined in terms of itself (cyclic "
+                    raise self.fail(f"{quoted(dname)} is defined in terms of itself (cyclic "
                                     "definition)", "define", dname, pos)
                 if used in names_in_table[i + 1:]:
-                    raise self.fail(f"{used!r} is defined later in [define]; move its "
+                    raise self.fail(f"{quoted(used)} is defined later in [define]; move its "
                                     "definition above this one (helpers are evaluated in "
                                     "order)", "define", dname, pos)
             self.check_names(e, set(taken), coords)
@@ -373,7 +379,7 @@ class _Validator:
         for v in value:
             if v not in OPTIONAL_KERNELS:
                 near = ex.closest(v, OPTIONAL_KERNELS)
-                raise self.fail(f"unknown kernel group {v!r}" + (f" (did you mean {near!r}?)"
+                raise self.fail(f"unknown kernel group {quoted(v)}" + (f" (did you mean {near!r}?)"
                                 if near else f"; choose from {', '.join(OPTIONAL_KERNELS)}"),
                                 None, "kernels")
         return tuple(sorted(set(value)))
@@ -389,7 +395,7 @@ class _Validator:
         return value
 
     def check_name(self, name: str, table: str | None, key: str) -> None:
-        what = f"name {name!r}"
+        what = f"name {quoted(name)}"
         if not isinstance(name, str) or not _IDENT.match(name):
             raise self.fail(f"{what} is not an identifier ([A-Za-z_][A-Za-z0-9_]*)", table, key)
         if len(name) > MAX_NAME_LENGTH:
@@ -405,6 +411,29 @@ class _Validator:
         if name.startswith("__") or re.match(r"^_[A-Z]", name):
             raise self.fail(f"{what} is reserved in C (leading underscore); rename it", table,
                             key)
+
+    def check_not_state_name(self, name: str, coords, table: str) -> None:
+        """d<coordinate> is a differential in line_element and a velocity in [invariants],
+        p_<coordinate> a momentum: a parameter or helper of that name would be shadowed there."""
+        for other in coords:
+            if name in ("d" + other, "p_" + other):
+                raise self.fail(f"{quoted(name)} reads as the differential or momentum of "
+                                f"coordinate {quoted(other)}; rename it", table, name)
+
+    def misplaced_keys(self) -> None:
+        """A top-level key written after a table header lands inside that table (TOML has no
+        way back to the top level): say so instead of reporting it as a parameter."""
+        for table, value in self.data.items():
+            if not isinstance(value, dict):
+                continue
+            for key, item in value.items():
+                # only a value of the top-level key's own kind: a parameter may be named
+                # "domain", a coordinate "signature" (a [metric] row, a table)
+                kind = list if key in ("coordinates", "kernels") else str
+                if key in TOP_LEVEL_KEYS and key not in self.data and isinstance(item, kind):
+                    raise self.fail(f"{quoted(key)} is a top-level key, but it is written after "
+                                    f"the [{table}] header, so TOML puts it inside [{table}]; "
+                                    "move it above the first table", table, key)
 
     def expression(self, table: str | None, key: str, text) -> Expression:
         if isinstance(text, bool) or not isinstance(text, (str, int, float)):
@@ -434,70 +463,286 @@ class _Validator:
                 near = ex.closest(used, set(known) | set(ex.CONSTANTS))
                 if near:
                     hint = f" (did you mean {near!r}?)"
-            raise self.fail(f"unknown name {used!r}{hint}", e.table, e.key, pos)
+            raise self.fail(f"unknown name {quoted(used)}{hint}", e.table, e.key, pos)
 
     def unknown_coordinate(self, name, coords, key) -> SpecError:
         near = ex.closest(name, coords)
-        hint = f" (did you mean {near!r}?)" if near else f"; coordinates are {', '.join(coords)}"
-        return self.fail(f"{name!r} is not a coordinate{hint}", "metric", key)
+        hint = (f" (did you mean {near!r}?)" if near
+                else f"; coordinates are {', '.join(coords)}")
+        return self.fail(f"{quoted(name)} is not a coordinate{hint}", "metric", key)
 
 
 # -- locating keys in the source text, for compiler-style messages --------------------------
-_HEADER = re.compile(r"^\s*\[\s*([^\[\]]+?)\s*\]\s*(#.*)?$")
-_KEY_PART = r'(?:[A-Za-z0-9_-]+|"[^"]*"|\'[^\']*\')'
-_ASSIGN = re.compile(rf"^\s*({_KEY_PART}(?:\s*\.\s*{_KEY_PART})*)\s*=\s*")
+# The text has already parsed as TOML when a key is looked up, so a small single-pass scanner
+# is enough: it follows table headers, dotted and quoted keys, inline tables, arrays and the
+# four kinds of strings, and records where each key's value starts. Lines are counted on "\n"
+# only, as TOML does (str.splitlines also breaks on U+2028, U+0085, \x1c, ... which TOML allows
+# inside strings and comments). Linear time: no regular expression here can backtrack.
+_BARE = re.compile(r"[A-Za-z0-9_-]+")
+_ESCAPES = {"b": "\b", "t": "\t", "n": "\n", "f": "\f", "r": "\r", '"': '"', "\\": "\\"}
 
 
-def _split_key(raw: str) -> list[str]:
-    parts = re.findall(_KEY_PART, raw)
-    return [p[1:-1] if p[:1] in "\"'" else p for p in parts]
-
-
-def _locate(text: str, table: str | None, key: str | None) -> tuple[int | None, int | None]:
-    """(line, column of the value's first character inside its quotes) of table.key."""
-    if key is None and table is None:
-        return None, None
-    target = ([table] if table else []) + (key.split(".") if key else [])
-    header: list[str] = []
-    prefix_hit = None
-    for lineno, line in enumerate(text.splitlines(), 1):
-        m = _HEADER.match(line)
-        if m and not line.lstrip().startswith("[["):
-            header = _split_key(m.group(1))
-            if header == target:
-                return lineno, None
+def _string_chars(text: str, i: int) -> tuple[list[tuple[int, str]], int]:
+    """The string starting at text[i] (a quote): ([(source index, character), ...] of its
+    value, index just past its closing quote). Handles the four TOML string kinds."""
+    quote = text[i]
+    triple = text.startswith(quote * 3, i)
+    n = len(text)
+    j = i + (3 if triple else 1)
+    if triple:      # a newline right after the opening quotes is not part of the value
+        if text.startswith("\r\n", j):
+            j += 2
+        elif text.startswith("\n", j):
+            j += 1
+    chars: list[tuple[int, str]] = []
+    while j < n:
+        ch = text[j]
+        if ch == quote:
+            if not triple:
+                return chars, j + 1
+            if text.startswith(quote * 3, j):
+                run = j
+                while run < n and text[run] == quote:
+                    run += 1
+                # up to two quotes before the closing three belong to the value
+                for k in range(j, run - 3):
+                    chars.append((k, quote))
+                return chars, run
+        if ch == "\\" and quote == '"':
+            nxt = text[j + 1:j + 2]
+            if nxt in _ESCAPES:
+                chars.append((j, _ESCAPES[nxt]))
+                j += 2
+                continue
+            if nxt in ("u", "U"):
+                width = 4 if nxt == "u" else 8
+                try:
+                    chars.append((j, chr(int(text[j + 2:j + 2 + width], 16))))
+                except ValueError:
+                    pass
+                j += 2 + width
+                continue
+            # a line-ending backslash (multi-line strings): skip the whitespace after it
+            j += 1
+            while j < n and text[j] in " \t\r\n":
+                j += 1
             continue
-        m = _ASSIGN.match(line)
-        if not m:
+        if ch == "\n" and not triple:
+            return chars, j
+        chars.append((j, ch))
+        j += 1
+    return chars, n
+
+
+class _KeyIndex:
+    """Where each key of a valid TOML text is: full key path (tuple of names) -> source
+    index of its value's first character (of the name, for a table header)."""
+
+    def __init__(self, text: str):
+        self.text = text
+        self.where: dict[tuple[str, ...], int] = {}
+        self.strings: dict[int, list[tuple[int, str]]] = {}
+        try:
+            self._scan()
+        except (IndexError, RecursionError):    # not valid TOML after all: keep what was found
+            pass
+
+    def _skip(self, i: int, newlines: bool) -> int:
+        """Past spaces and tabs (and newlines and comments when ``newlines``)."""
+        text, n = self.text, len(self.text)
+        while i < n:
+            ch = text[i]
+            if ch in " \t" or (newlines and ch in "\r\n"):
+                i += 1
+            elif ch == "#" and newlines:
+                end = text.find("\n", i)
+                i = n if end < 0 else end + 1
+            else:
+                break
+        return i
+
+    def _key(self, i: int) -> tuple[list[str], int]:
+        """A dotted key at text[i]: (its names, decoded; index past it)."""
+        text, parts = self.text, []
+        while True:
+            i = self._skip(i, False)
+            if text[i] in "\"'":
+                chars, i = _string_chars(text, i)
+                parts.append("".join(c for _, c in chars))
+            else:
+                m = _BARE.match(text, i)
+                if m is None:
+                    return parts, i
+                parts.append(m.group())
+                i = m.end()
+            i = self._skip(i, False)
+            if text[i:i + 1] != ".":
+                return parts, i
+            i += 1
+
+    def _record(self, path: tuple[str, ...], i: int) -> None:
+        self.where.setdefault(path, i)
+
+    def _value(self, i: int, path: tuple[str, ...] | None) -> int:
+        """Skip the value at text[i], recording keys of inline tables; index past it."""
+        text, n = self.text, len(self.text)
+        ch = text[i]
+        if ch in "\"'":
+            chars, end = _string_chars(text, i)
+            self.strings[i] = chars
+            return end
+        if ch == "[":
+            return self._items(i + 1, "]", True, lambda j: self._value(j, None))
+        if ch == "{":
+            return self._items(i + 1, "}", False, lambda j: self._entry(j, path))
+        while i < n and text[i] not in ",]}#\r\n":     # number, boolean, date
+            i += 1
+        return i
+
+    def _items(self, i: int, close: str, newlines: bool, item) -> int:
+        """Scan ``item, item, ...`` up to the ``close`` character (an array or an inline
+        table); item(index) -> index past the item. Index past the closing character."""
+        text = self.text
+        while True:
+            i = self._skip(i, newlines)
+            if text[i] == close:
+                return i + 1
+            if text[i] == ",":
+                i += 1
+                continue
+            start = i
+            i = item(i)
+            if i <= start:      # not valid TOML: stop here
+                return i + 1
+
+    def _entry(self, i: int, path: tuple[str, ...] | None) -> int:
+        """One ``key = value`` of an inline table below ``path``; index past it."""
+        parts, j = self._key(i)
+        j = self._skip(j, False)
+        if not parts or self.text[j] != "=":
+            return i
+        j = self._skip(j + 1, False)
+        inner = None if path is None else path + tuple(parts)
+        if inner is not None:
+            self._record(inner, j)
+        return self._value(j, inner)
+
+    def _scan(self) -> None:
+        text, n = self.text, len(self.text)
+        header: tuple[str, ...] = ()
+        i = 0
+        while True:
+            i = self._skip(i, True)
+            if i >= n:
+                return
+            if text[i] == "[":
+                start = self._skip(i + (2 if text.startswith("[[", i) else 1), False)
+                parts, i = self._key(start)
+                header = tuple(parts)
+                self._record(header, start)
+            else:
+                parts, j = self._key(i)
+                j = self._skip(j, False)
+                if not parts or text[j:j + 1] != "=":
+                    return      # not a key/value line: stop rather than guess
+                j = self._skip(j + 1, False)
+                path = header + tuple(parts)
+                self._record(path, j)
+                i = self._value(j, path)
+            end = text.find("\n", i)
+            i = n if end < 0 else end + 1
+
+    def position(self, path: tuple[str, ...], offset: int | None) -> int | None:
+        """Source index of character ``offset`` of the value at ``path`` (its first character
+        inside the quotes when offset is None); None if the path was not found."""
+        start = self.where.get(path)
+        if start is None:
+            return None
+        chars = self.strings.get(start)
+        if chars is None:
+            return min(start + (offset or 0), len(self.text))
+        if not chars:
+            return start + 1
+        if offset is None or offset <= 0:
+            return chars[0][0]
+        if offset < len(chars):
+            return chars[offset][0]
+        return chars[-1][0] + 1
+
+    def find(self, table: str | None, key: str | None, offset: int | None) -> int | None:
+        """Source index for table/key: the exact key, then the key read as a dotted path
+        (metric pairs ``r.theta``), then the first key below that path."""
+        head = (table,) if table is not None else ()
+        paths = [head + (key,)] if key is not None else [head]
+        if key is not None and "." in key:
+            paths.append(head + tuple(key.split(".")))
+        for path in paths:
+            at = self.position(path, offset)
+            if at is not None:
+                return at
+        for path in paths:
+            below = [i for p, i in self.where.items() if p[:len(path)] == path]
+            if below:
+                return min(below)
+        return None
+
+
+def _deep_nesting(text: str, limit: int = 50) -> int:
+    """Index of the first bracket or brace ``limit`` levels deep (outside strings and
+    comments), or 0."""
+    depth, i, n = 0, 0, len(text)
+    while i < n:
+        ch = text[i]
+        if ch in "\"'":
+            i = _string_chars(text, i)[1]
             continue
-        full = header + _split_key(m.group(1))
-        if full == target:
-            col = m.end() + 1
-            if line[m.end():m.end() + 1] in ("\"", "'") and line[m.end():m.end() + 3] not in (
-                    '"""', "'''"):
-                col += 1
-            return lineno, col
-        if prefix_hit is None and full[:len(target)] == target:
-            prefix_hit = (lineno, None)
-    return prefix_hit or (None, None)
+        if ch == "#":
+            end = text.find("\n", i)
+            i = n if end < 0 else end
+            continue
+        if ch in "[{":
+            depth += 1
+            if depth >= limit:
+                return i
+        elif ch in "]}":
+            depth -= 1
+        i += 1
+    return 0
+
+
+def _line_col(text: str, index: int) -> tuple[int, int]:
+    """1-based (line, column) of text[index], lines broken on "\n" only."""
+    line_start = text.rfind("\n", 0, index) + 1
+    return text.count("\n", 0, index) + 1, index - line_start + 1
 
 
 def _context_line(text: str, line: int | None, column: int | None) -> str:
+    """The source line (cut to a window around the column when long) and a caret line."""
     if line is None:
         return ""
-    lines = text.splitlines()
+    lines = text.split("\n")
     if not 1 <= line <= len(lines):
         return ""
-    src = lines[line - 1]
+    src = lines[line - 1].rstrip("\r")
+    # a window of the line: a hostile spec may hold a 300,000-character line
+    start = 0 if column is None else max(0, column - 1 - CONTEXT_WIDTH // 2)
+    shown = src[start:start + CONTEXT_WIDTH]
+    shown = ("..." if start else "") + shown + ("..." if start + CONTEXT_WIDTH < len(src) else "")
+    shown = "".join(ch if ch.isprintable() or ch == "\t" else " " for ch in shown)
     if column is None:
-        return src
-    return src + "\n" + " " * (column - 1) + "^"
+        return shown
+    return shown + "\n" + " " * (column - 1 - start + (3 if start else 0)) + "^"
+
+
+CONTEXT_WIDTH = 100
 
 
 def _located_error(text: str, path: str, reason: str, table: str | None, key: str | None,
                    offset: int | None) -> SpecError:
-    line, col = _locate(text, table, key)
-    if col is not None and offset is not None:
-        col += offset
+    line = col = None
+    if table is not None or key is not None:
+        at = _KeyIndex(text).find(table, key, offset)
+        if at is not None:
+            line, col = _line_col(text, at)
     return SpecError(reason, path=path, table=table, key=key, line=line, column=col,
                      context=_context_line(text, line, col))

@@ -11,6 +11,7 @@ import importlib.util
 import io
 import json
 import os
+import re
 import shutil
 import subprocess
 import time
@@ -79,12 +80,14 @@ def expected_first_line(err: SpecError) -> str:
         where += f":{err.line}"
         if err.column is not None:
             where += f":{err.column}"
+    # keys that are not plain names are quoted as repr writes them (issue 12: one line)
+    key = err.key if err.key is None or re.fullmatch(r"[A-Za-z0-9_.-]+", err.key) else repr(err.key)
     if err.table is not None and err.key is not None:
-        place = f"[{err.table}] {err.key}: "
+        place = f"[{err.table}] {key}: "
     elif err.table is not None:
         place = f"[{err.table}]: "
     elif err.key is not None:
-        place = f"{err.key}: "
+        place = f"{key}: "
     else:
         place = ""
     return f"{where}: error: {place}{err.reason}"
@@ -112,7 +115,7 @@ def check_message(err: SpecError, path: Path, table, key, fragment: str) -> None
         assert f"[{table}]" in first
     if key is not None:
         assert err.key == key
-        assert f"{key}: " in first
+        assert f"{key}: " in first or f"{key!r}: " in first
     assert "Traceback" not in str(err)
 
 

@@ -247,6 +247,10 @@ def _summary(r, out: Path, written: list[str]) -> None:
     unchanged = [f for f in files if f not in written]
     print(f"  wrote: {', '.join(written) or 'nothing'}"
           + (f"; unchanged: {', '.join(unchanged)}" if unchanged else ""))
+    from .pipeline import slow_stages
+    slow = slow_stages(r)
+    if slow:
+        print(f"  slow: {slow}")
 
 
 class ProgressBar:

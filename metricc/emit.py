@@ -383,6 +383,20 @@ TILE = 16               # states per tile of the batch kernels
 # Kernels whose batch entry points run in tiles (cloned per vector width): the right-hand
 # sides, which integrators and ray tracers call millions of times.
 TILED_KERNELS = ("geodesic_rhs", "hamilton_rhs")
+# Kernels above this many emitted operations (a dense 8-D metric's curvature and Jacobians)
+# get a structure-of-arrays entry that calls the single-state function instead of a second,
+# vectorised copy of the body: the copy doubled the compile time of code nobody vectorises
+# profitably (a Riemann tensor is 30,000 operations, thousands of live values).
+HEAVY_OPS = 4000
+# Optional kernel groups and their kernels; each group can be compiled as a translation unit
+# of its own (NAME_SKIP_<GROUP> and NAME_SKIP_CORE in the C source).
+GROUP_KERNELS = {"curvature": ("riemann", "ricci", "ricci_scalar", "kretschmann"),
+                 "jacobian": ("geodesic_jacobian", "hamilton_jacobian")}
+
+
+def kernel_group(name: str) -> str:
+    """"core" or the optional group ("curvature", "jacobian") a kernel belongs to."""
+    return next((g for g, names in GROUP_KERNELS.items() if name in names), "core")
 
 
 @dataclass(frozen=True)
@@ -643,11 +657,12 @@ def c_source(ks: KernelSet, env=None, preamble: str = "") -> str:
     helpers = [emit_trig.helpers(ks, P)] if emit_trig.uses_trig(ks) else []
     if any(isinstance(st, Solve) and st.order is None for k in ks.kernels for st in k.steps):
         helpers.append(_solve_helper(ks))
-    functions = []
+    sections = {g: [] for g in ("core", *GROUP_KERNELS)}
     kernels = {k.name: k for k in ks.kernels}
     npar = len(ks.parameters)
     for name, single, batch in c_prototypes(ks, f"{P}_RESTRICT"):
         k = kernels[name]
+        functions = sections[kernel_group(name)]
         functions.append({"prototype": single, "body": _c_body(ks, k)})
         soa = soa_prototype(ks, k, f"{P}_RESTRICT")
         if name in TILED_KERNELS:
@@ -664,9 +679,13 @@ def c_source(ks: KernelSet, env=None, preamble: str = "") -> str:
         body += ["for (i = 0; i < n; ++i)",
                  f"    {ks.name}_{name}({k.input_name} + i * {n_in}, {pexpr}, out + i * {n_out});"]
         functions.append({"prototype": batch, "body": body})
+        if k.ops_after > HEAVY_OPS:
+            functions.append({"prototype": soa, "body": _soa_by_calls(ks, k)})
+            continue
         soa_body = ["size_t i;", f"{P}_SIMD_LOOP", "for (i = 0; i < n; ++i) {"]
         soa_body += ["    " + line for line in _c_body(ks, k, soa=True)] + ["}"]
         functions.append({"prototype": f"{P}_VECTOR_CLONES " + soa, "body": soa_body})
+    functions = sections["core"]
     for form in ("geodesic", "hamilton"):
         functions.append({"prototype": gsl_prototype(ks, form),
                           "body": ["(void)t;",
@@ -678,8 +697,25 @@ def c_source(ks: KernelSet, env=None, preamble: str = "") -> str:
     integrator = env.get_template("c_integrator.c.j2").render(
         **emit_integrator.integrator_context(ks))
     return env.get_template("c_source.c.j2").render(
-        banner=_c_banner(ks), preamble=preamble, helpers=helpers, functions=functions,
+        banner=_c_banner(ks), preamble=preamble, helpers=helpers,
+        sections=[{"guard": f"{P}_SKIP_{g.upper()}", "functions": fns}
+                  for g, fns in sections.items() if fns],
+        groups=[f"{P}_SKIP_{g.upper()}" for g in GROUP_KERNELS],
         prefix_upper=P, integrator=integrator, vector_math=vector_math_block(ks))
+
+
+def _soa_by_calls(ks: KernelSet, k: Kernel) -> list[str]:
+    """NAME_<kernel>_soa of a heavy kernel: each state gathered into a local array, passed
+    to the single-state function and scattered back (the same results, bit for bit)."""
+    n_in, n_out = len(k.input_symbols), k.output_size
+    pexpr = "params + i * params_stride" if ks.parameters else "params"
+    return (["size_t i, c;", f"double in_[{n_in}], out_[{n_out}];"]
+            + ([] if ks.parameters else ["(void)params_stride;"])
+            + ["for (i = 0; i < n; ++i) {",
+               f"    for (c = 0; c < {n_in}; ++c) in_[c] = {k.input_name}[c * n + i];",
+               f"    {ks.name}_{k.name}(in_, {pexpr}, out_);",
+               f"    for (c = 0; c < {n_out}; ++c) out[c * n + i] = out_[c];",
+               "}"])
 
 
 def _c_double(v: float) -> str:

@@ -15,6 +15,7 @@ library call (sin, exp, ...) gets a statement of its own, so backends can batch 
 from __future__ import annotations
 
 import heapq
+import time
 from dataclasses import dataclass, field, replace
 
 import sympy as sp
@@ -55,6 +56,7 @@ class Kernel:
         ([x^mu, p_mu], 2*dim). input_symbols[k] stands for element k of that array.
     outputs: flat row-major expressions over output_shape.
     ops_before / ops_after: operations before and after optimisation (see count_ops).
+    seconds: time spent optimising it (reported by ``metricc build`` when slow).
     """
     name: str
     doc: str
@@ -65,6 +67,7 @@ class Kernel:
     outputs: tuple[sp.Expr, ...]
     ops_before: int
     ops_after: int
+    seconds: float = field(default=0.0, compare=False)
 
     @property
     def output_size(self) -> int:
@@ -525,6 +528,7 @@ def _hamilton_jacobian(geo: Geometry, metric_defs) -> Kernel:
 # -- optimisation and scheduling -----------------------------------------------------------
 def _make(name, doc, input_name, input_symbols, shape, outputs, pinned, solves=()) -> Kernel:
     """Optimise one kernel: fold constants, hoist powers, CSE, schedule, drop dead code."""
+    t0 = time.perf_counter()
     outputs = [as_expr(o) for o in outputs]
     pinned = [(s, as_expr(e)) for s, e in pinned]
     solves = [(tuple(as_expr(m) for m in mat), tuple(tuple(as_expr(e) for e in col)
@@ -617,7 +621,7 @@ def _make(name, doc, input_name, input_symbols, shape, outputs, pinned, solves=(
     return Kernel(name=name, doc=doc, input_name=input_name,
                   input_symbols=tuple(input_symbols), output_shape=tuple(shape),
                   steps=tuple(steps), outputs=tuple(outputs_red), ops_before=ops_before,
-                  ops_after=ops_after)
+                  ops_after=ops_after, seconds=time.perf_counter() - t0)
 
 
 def _free(exprs) -> set:

@@ -14,7 +14,8 @@ import jinja2
 
 from ._version import __version__
 from . import emit_integrator, emit_trig
-from .integrate import DOMAIN, DONE, EVENT_BASE, MAX_STEPS, NOT_FINITE, STEP_UNDERFLOW
+from .integrate import BAD_INPUT, DOMAIN, DONE, EVENT_BASE, INTERRUPTED, MAX_STEPS, NOT_FINITE, \
+    STEP_UNDERFLOW
 from .kernels import Assign, Kernel, KernelSet, Solve, live_steps, symbols_read
 from .printing import Printer, is_library_call
 from .resources import template_dir
@@ -188,6 +189,8 @@ def c_header(ks: KernelSet, env=None) -> str:
         f"#define {P}_STATUS_MAX_STEPS {MAX_STEPS}",
         f"#define {P}_STATUS_STEP_UNDERFLOW {STEP_UNDERFLOW}",
         f"#define {P}_STATUS_NOT_FINITE {NOT_FINITE}",
+        f"#define {P}_STATUS_BAD_INPUT {BAD_INPUT} /* cannot start: NaN state, parameter, f or stop value */",
+        f"#define {P}_STATUS_INTERRUPTED {INTERRUPTED} /* the options' interrupt flag was raised */",
         f"#define {P}_STATUS_EVENT(k) ({EVENT_BASE} + (k)) /* event k of the spec fired */",
         f"#define {P}_NEVENTS {len(ks.events)}"]
     for i, ev in enumerate(ks.events):

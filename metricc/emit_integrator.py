@@ -21,6 +21,7 @@ CONTMAX = 7    # dense-output coefficient vectors (DOP853: 7, DP5: 4)
 LANES = 16     # states advanced side by side (a multiple of the batch kernels' tile of 16)
 FEW = 4        # at most this many busy lanes: one-state steps (idle lanes' sums cost more)
 SOA_STAGES = max(DOP853["stages"], DP5["stages"])   # stages kept per lane (13)
+MASK_BITS = 64 # events per unsigned long long word of the options' event masks
 
 
 def _lit(v) -> str:
@@ -176,6 +177,18 @@ def _dense_functions(name: str, P: str, n: int) -> list[str]:
     return [dp5_prepare, dp5_dense, dop_prepare, dop_dense]
 
 
+def _mask_word(j: int) -> str:
+    """The options field holding event j's bit: event_mask for the first MASK_BITS events,
+    then the words of event_mask_more (only declared for specs with more events)."""
+    return "opt->event_mask" if j < MASK_BITS else f"opt->event_mask_more[{j // MASK_BITS - 1}]"
+
+
+def mask_words(n_events: int) -> int:
+    """Words of event_mask_more a spec with n_events events declares (0: the field is
+    absent, and the struct is the one of a spec with at most 64 events)."""
+    return max(0, -(-n_events // MASK_BITS) - 1)
+
+
 def integrator_context(ks) -> dict:
     """Template variables for templates/c_integrator.c.j2."""
     name, P = ks.name, ks.name.upper()
@@ -187,11 +200,11 @@ def integrator_context(ks) -> dict:
     if nstop:
         stop_body.append(f"{name}_stops(y, params, g);")
         for j in range(nev):
-            stop_body.append(f"if (!((mask >> {j}) & 1UL)) g[{j}] = 1.0;")
+            stop_body.append(f"if (!(({_mask_word(j)} >> {j % MASK_BITS}) & 1ULL)) g[{j}] = 1.0;")
         if not nev:
-            stop_body.append("(void)mask;")
+            stop_body.append("(void)opt;")
     else:
-        stop_body += ["(void)y;", "(void)params;", "(void)mask;", "g[0] = 1.0;"]
+        stop_body += ["(void)y;", "(void)params;", "(void)opt;", "g[0] = 1.0;"]
     stop_code = (f"static {P}_FN int {name}_stop_code(int j)\n{{\n"
                  f"    return j < {nev} ? {EVENT_BASE} + j : {DOMAIN};\n}}\n")
 
@@ -217,15 +230,24 @@ def integrator_context(ks) -> dict:
 
 
 def options_struct(ks, restrict_free: bool = False) -> str:
-    """The options struct declaration (same text for the header and cffi's cdef)."""
+    """The options struct declaration (same text for the header and cffi's cdef). Fields
+    are only ever appended, so that positional initialisers written for an older layout
+    still compile (the new fields are then zero: no interrupt flag)."""
+    words = mask_words(len(ks.events))
+    more = (f"    unsigned long long event_mask_more[{words}]; /* bit b of word w: event "
+            "64 (w + 1) + b */\n") if words else ""
     return (f"typedef struct {ks.name}_integrator_options {{\n"
             "    double rtol;                /* relative tolerance */\n"
             "    double atol;                /* absolute tolerance */\n"
             "    long max_steps;             /* accepted steps per state */\n"
             f"    int method;                 /* {ks.name.upper()}_METHOD_DP5 or _DOP853 */\n"
             f"    int form;                   /* {ks.name.upper()}_FORM_GEODESIC or _HAMILTON */\n"
-            "    unsigned long event_mask;   /* bit k set: event k of the spec is active */\n"
+            "    unsigned long long event_mask; /* bit k set: event k (< 64) of the spec is active */\n"
             "    int threads;                /* OpenMP threads; <= 0: the OpenMP default */\n"
+            "    const volatile int *interrupt; /* NULL, or a flag read once per step: when it is\n"
+            "                                   nonzero every unfinished state stops with status\n"
+            f"                                   {ks.name.upper()}_STATUS_INTERRUPTED */\n"
+            + more +
             f"}} {ks.name}_integrator_options;")
 
 

@@ -18,11 +18,68 @@ import numpy as np
 from .tableaus import METHODS
 
 RUNNING, DONE, DOMAIN, MAX_STEPS, STEP_UNDERFLOW, NOT_FINITE = -1, 0, 1, 2, 3, 4
+# BAD_INPUT: the state cannot start (a non-finite component or parameter, or the right-hand
+# side or a stop function is NaN there); INTERRUPTED: the C integrator's interrupt flag was
+# raised before the state finished (Python turns that into KeyboardInterrupt).
+BAD_INPUT, INTERRUPTED = 5, 6
 EVENT_BASE = 16
 BASE_STATUS = {DONE: "done", DOMAIN: "domain", MAX_STEPS: "max_steps",
-               STEP_UNDERFLOW: "step_underflow", NOT_FINITE: "not_finite"}
+               STEP_UNDERFLOW: "step_underflow", NOT_FINITE: "not_finite",
+               BAD_INPUT: "bad_input", INTERRUPTED: "interrupted"}
 ROOT_REL_TOL = 1e-12   # event location: |delta lambda| <= 1e-12 * max(1, |lambda|)
 HMIN_REL = 1e-14       # smallest step relative to max(1, |lambda|)
+# rtol below 100 ulp of 1 asks for more than double precision can give: the error estimate
+# is then rounding noise and the step shrinks until it underflows (or, with atol = 0, the
+# scaled error overflows); refused up front rather than clamped, so no run silently gets a
+# tolerance other than the one asked for.
+RTOL_MIN = 100 * np.finfo(np.float64).eps
+# max_steps at or above this (and inf) mean "no limit": no state takes 2^62 steps, and the C
+# integrator's count is a 64-bit long.
+MAX_STEPS_UNLIMITED = 2 ** 62
+# threads above this are a typo (the C integrator would start that many OpenMP threads).
+THREADS_MAX = 4096
+
+
+def check_options(rtol, atol, max_steps, threads):
+    """Validate the integrator options shared by both backends.
+
+    Returns (rtol, atol, max_steps, threads): floats, an int (inf and values >=
+    MAX_STEPS_UNLIMITED become MAX_STEPS_UNLIMITED) and an int or None. Raises ValueError
+    naming the argument."""
+    try:
+        rtol, atol = float(rtol), float(atol)
+    except (TypeError, ValueError):
+        raise ValueError(f"rtol and atol must be numbers, got rtol={rtol!r}, atol={atol!r}") \
+            from None
+    if not (np.isfinite(rtol) and rtol >= RTOL_MIN):
+        raise ValueError(f"rtol must be a finite number >= {RTOL_MIN:.3g} (100 ulp of 1; "
+                         f"smaller asks for more than double precision gives), got {rtol!r}")
+    if not (np.isfinite(atol) and atol >= 0):
+        raise ValueError(f"atol must be a finite number >= 0, got {atol!r}")
+    max_steps = _whole("max_steps", max_steps, 0, MAX_STEPS_UNLIMITED, "(or inf: no limit)")
+    if threads is not None:
+        what = f"(at most {THREADS_MAX})"
+        if _whole("threads", threads, 1, None, what) > THREADS_MAX:
+            raise ValueError(f"threads must be a whole number >= 1 {what}, got {threads!r}")
+        threads = int(threads)
+    return rtol, atol, max_steps, threads
+
+
+def _whole(name: str, value, low: int, cap: int | None, what: str) -> int:
+    """value as an int >= low; with cap, inf and anything above cap become cap."""
+    if isinstance(value, (bool, np.bool_, str, bytes)):
+        value = None   # True or "100" is not a count
+    try:
+        v = float(value)
+    except (TypeError, ValueError, OverflowError):
+        v = np.nan
+    if cap is not None and v == np.inf:
+        return cap
+    if not np.isfinite(v) or v != np.floor(v) or v < low:
+        raise ValueError(f"{name} must be a whole number >= {low} {what}, got {value!r}")
+    if cap is not None and v >= cap:
+        return cap
+    return int(value) if isinstance(value, (int, np.integer)) else int(v)
 
 
 @dataclass(frozen=True)
@@ -31,11 +88,11 @@ class IntegrationResult:
 
     y: (N, 2*dim) states where each integration stopped. lam: (N,) affine parameter reached.
     status: (N,) str array ("done", an event name, "domain", "max_steps", "step_underflow",
-    "not_finite"). steps: (N,) accepted steps. samples: (N, S, 2*dim) or None. drift: (N,)
+    "not_finite", "bad_input"). steps: (N,) accepted steps. samples: (N, S, 2*dim) or None. drift: (N,)
     |g(u,u)_end - g(u,u)_start| (Hamiltonian form: g^{mu nu} p_mu p_nu). invariant_drift:
     dict name -> (N,) |I_end - I_start| for the spec's [invariants]. status_code: (N,) the
     integer statuses (0 done, 1 domain, 2 max_steps, 3 step_underflow, 4 not_finite,
-    16 + k event k).
+    5 bad_input, 16 + k event k).
     """
     y: np.ndarray
     lam: np.ndarray
@@ -135,16 +192,23 @@ def integrate_numpy(rhs: Callable, stop: Callable | None, y0: np.ndarray, lam_en
         return tuple(p[idx] for p in params)
 
     with np.errstate(all="ignore"):
+        # a state that cannot start is "bad_input": a non-finite component or parameter,
+        # a stop function that is NaN at the start (an out-of-range parameter typically
+        # makes the horizon or domain expression NaN), or a non-finite f(y0) (below)
         finite0 = np.all(np.isfinite(y), axis=1)
-        status[~finite0] = NOT_FINITE
+        for p in params:
+            finite0 &= np.isfinite(np.broadcast_to(p, (N,)))
+        status[~finite0] = BAD_INPUT
         g_prev = np.zeros((N, len(stop_codes)))
         if stop is not None and len(stop_codes):
             idx = np.flatnonzero(status == RUNNING)
             g_prev[idx] = stop(y[idx, :dim], sub(idx))
-            bad = ~(g_prev[idx] > 0)  # <= 0 or NaN
-            hit = bad.any(axis=1)
+            unknown = np.isnan(g_prev[idx]).any(axis=1)
+            bad = ~(g_prev[idx] > 0)  # <= 0
+            hit = bad.any(axis=1) & ~unknown
             first = np.argmax(bad, axis=1)
             status[idx[hit]] = stop_codes[first[hit]]
+            status[idx[unknown]] = BAD_INPUT
         if S:
             at_zero = samples == 0.0
             if at_zero.any():
@@ -156,6 +220,10 @@ def integrate_numpy(rhs: Callable, stop: Callable | None, y0: np.ndarray, lam_en
         idx = np.flatnonzero(status == RUNNING)
         if idx.size:
             f[idx] = rhs(y[idx], sub(idx))
+            badf = ~np.all(np.isfinite(f[idx]), axis=1)
+            status[idx[badf]] = BAD_INPUT
+            idx = idx[~badf]
+        if idx.size:
             h[idx] = _initial_step(rhs, y[idx], f[idx], sub(idx), direction, abs(lam_end),
                                    tab.order, rtol, atol)
         facold = np.full(N, 1e-4)
@@ -164,9 +232,13 @@ def integrate_numpy(rhs: Callable, stop: Callable | None, y0: np.ndarray, lam_en
         nonfinite_trouble = np.zeros(N, dtype=bool)
         total = N
         reported = -1
+        # The running states, kept as a shrinking index array: each iteration costs in
+        # proportion to the states still running, not to the batch (a long straggler among
+        # many finished states runs as fast as alone).
+        idx = np.flatnonzero(status == RUNNING)
 
         while True:
-            idx = np.flatnonzero(status == RUNNING)
+            idx = idx[status[idx] == RUNNING]
             if progress is not None:
                 done = total - idx.size
                 if done != reported:

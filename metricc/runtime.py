@@ -307,6 +307,8 @@ class MetricKernels:
         (N,).
         """
         from .cluster import integrate_dask, is_dask_array
+        from .integrate import check_options
+        rtol, atol, max_steps, threads = check_options(rtol, atol, max_steps, threads)
         if is_dask_array(y0):
             return integrate_dask(self, y0, lam_end, params=params, rtol=rtol, atol=atol,
                                   max_steps=max_steps, events=events, samples=samples,
@@ -327,13 +329,6 @@ class MetricKernels:
         lam_end = float(lam_end)
         if not np.isfinite(lam_end):
             raise ValueError(f"lam_end must be finite, got {lam_end}")
-        rtol, atol = float(rtol), float(atol)
-        if not (rtol > 0 and atol >= 0 and np.isfinite(rtol) and np.isfinite(atol)):
-            raise ValueError(f"need rtol > 0 and atol >= 0, got rtol={rtol}, atol={atol}")
-        if int(max_steps) != max_steps or max_steps < 0:
-            raise ValueError(f"max_steps must be a non-negative integer, got {max_steps!r}")
-        if threads is not None and (int(threads) != threads or threads < 1):
-            raise ValueError(f"threads must be a positive integer, got {threads!r}")
         if progress is not None and not callable(progress):
             raise TypeError("progress must be a callable progress(done, total)")
         if events is None:
@@ -414,11 +409,21 @@ class MetricKernels:
         ffi, lib = self._c.ffi, self._c.lib
         N, n = flat.shape
         opt = ffi.new(f"{self.name}_integrator_options *")
-        opt.rtol, opt.atol, opt.max_steps = rtol, atol, max_steps
+        opt.rtol, opt.atol = rtol, atol
+        opt.max_steps = min(max_steps, 2 ** (8 * ffi.sizeof("long") - 1) - 1)
         opt.method = 0 if method == "dp5" else 1
         opt.form = 0 if form == "geodesic" else 1
-        opt.event_mask = sum(1 << k for k in active)
+        # event k is bit k % 64 of word k // 64: event_mask, then event_mask_more[0], ...
+        bits = sum(1 << k for k in active)
+        opt.event_mask = bits & (2 ** 64 - 1)
+        if len(self.event_names) > 64:
+            for w in range(len(opt.event_mask_more)):
+                opt.event_mask_more[w] = (bits >> (64 * (w + 1))) & (2 ** 64 - 1)
         opt.threads = int(threads or 0)
+        # Ctrl-C: the C call runs off the main thread, which waits for it and, on
+        # KeyboardInterrupt, raises this flag; the integrator reads it once per step
+        flag = ffi.new("int *")
+        opt.interrupt = flag
         npar = len(values)
         if npar == 0 or all(v.ndim == 0 for v in given.values()):
             pvec = np.array([float(v[0]) if v.size else 0.0 for v in values] or [0.0])
@@ -439,13 +444,14 @@ class MetricKernels:
             stop = min(N, start + chunk)
             m = stop - start
             pv = pvec[start:stop] if stride else pvec
-            fn(m, ffi.from_buffer("double[]", flat[start:stop]), lam_end,
-               ffi.from_buffer("double[]", pv), stride, opt, S, s_ptr,
-               ffi.from_buffer("double[]", y_out[start:stop]),
-               ffi.from_buffer("double[]", lam[start:stop]),
-               ffi.from_buffer("int[]", codes[start:stop]),
-               ffi.from_buffer("long[]", steps[start:stop]),
-               ffi.from_buffer("double[]", samp[start:stop]) if S else ffi.NULL)
+            args = (m, ffi.from_buffer("double[]", flat[start:stop]), lam_end,
+                    ffi.from_buffer("double[]", pv), stride, opt, S, s_ptr,
+                    ffi.from_buffer("double[]", y_out[start:stop]),
+                    ffi.from_buffer("double[]", lam[start:stop]),
+                    ffi.from_buffer("int[]", codes[start:stop]),
+                    ffi.from_buffer("long[]", steps[start:stop]),
+                    ffi.from_buffer("double[]", samp[start:stop]) if S else ffi.NULL)
+            _interruptible(fn, args, flag)
             if progress is not None:
                 progress(stop, N)
         return y_out, lam, codes.astype(np.int32), steps, samp
@@ -527,6 +533,54 @@ class MetricKernels:
             fn(count, ffi.from_buffer("double[]", flat), ffi.from_buffer("double[]", pvec),
                stride, ffi.from_buffer("double[]", out))
         return out.reshape(batch + out_shape)
+
+
+_WORKER: list = []   # [(process id, executor)]: the thread that runs C integrations
+
+
+def _integrator_thread():
+    """A one-thread executor for C integrations started from the main thread, created per
+    process (a forked child gets its own). One long-lived thread also keeps the OpenMP
+    thread pool, which belongs to the thread that starts the parallel region, warm."""
+    import os
+    from concurrent.futures import ThreadPoolExecutor
+    if not _WORKER or _WORKER[0][0] != os.getpid():
+        _WORKER[:] = [(os.getpid(), ThreadPoolExecutor(1, thread_name_prefix="metricc-integrate"))]
+    return _WORKER[0][1]
+
+
+def _interruptible(fn, args, flag) -> None:
+    """fn(*args), a C integrator call whose options point at ``flag`` (cffi int *), such that
+    Ctrl-C stops it within a step.
+
+    Python runs signal handlers only on the main thread, between bytecodes; a long C call on
+    the main thread would hold a KeyboardInterrupt back until it returns. So the call runs on
+    a worker thread while the main thread waits in short timed waits (the signal may be
+    delivered to any thread; a timed wait returns to the interpreter, which then runs the
+    handler). On KeyboardInterrupt the flag is raised, the call (which holds pointers into
+    our arrays, kept alive by ``args``) is awaited, and the interrupt re-raised. Off the main
+    thread the call is made directly."""
+    import threading
+    from concurrent.futures import TimeoutError as FutureTimeout
+    if threading.current_thread() is not threading.main_thread():
+        fn(*args)
+        return
+    future = _integrator_thread().submit(fn, *args)
+    try:
+        while True:
+            try:
+                future.result(timeout=0.1)
+                return
+            except FutureTimeout:
+                continue
+    except KeyboardInterrupt:
+        flag[0] = 1
+        while not future.done():
+            try:
+                future.exception(timeout=0.1)
+            except (FutureTimeout, KeyboardInterrupt):
+                continue
+        raise
 
 
 def build_options(spec: Spec, kernels=None, vector_math: bool = False) -> dict:

@@ -51,7 +51,8 @@ offsetof CHAR_BIT INT_MAX INT_MIN DBL_MAX DBL_MIN DBL_EPSILON I complex imaginar
 """.split())
 RESERVED_NAMES = frozenset(ex.FUNCTIONS) | frozenset(ex.CONSTANTS) | {"norm"}
 # Statuses the integrator reports; an event may not take one of these names.
-RESERVED_EVENT_NAMES = frozenset({"done", "domain", "max_steps", "step_underflow", "not_finite"})
+RESERVED_EVENT_NAMES = frozenset({"done", "domain", "max_steps", "step_underflow", "not_finite",
+                                  "bad_input", "interrupted"})
 
 
 @dataclass(frozen=True)

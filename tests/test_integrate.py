@@ -564,7 +564,7 @@ def test_nan_state_does_not_affect_others(shipped, backend):
     samples = np.linspace(0.0, 80.0, 9)
     clean = k.integrate(y0, 80.0, samples=samples)
     mixed = k.integrate(bad, 80.0, samples=samples)
-    assert mixed.status[2] in ("not_finite", "domain")
+    assert mixed.status[2] == "bad_input"
     assert np.all(np.isnan(mixed.samples[2, 1:]))
     keep = [i for i in range(len(y0)) if i != 2]
     assert [status_list(mixed)[i] for i in keep] == [status_list(clean)[i] for i in keep]

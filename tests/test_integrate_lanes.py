@@ -35,7 +35,7 @@ def awkward_batch(k, n=45, seed=11):
     """Photons plus states that stop at once or early: NaN, on the horizon event, outside the
     domain, and (through max_steps in the callers) cut short."""
     y = photons(k, n, seed)
-    y[3, 2] = np.nan                      # not_finite at the start
+    y[3, 2] = np.nan                      # bad_input at the start
     y[7, 1] = 1.0                         # inside the horizon event: stops at lambda = 0
     y[12, 2] = 0.0                        # on the axis: outside the domain
     return y
@@ -72,7 +72,7 @@ def test_batch_equals_states_integrated_alone(shipped, method):
     kw = dict(rtol=1e-9, atol=1e-11, method=method, samples=[0.0, 5.0, 20.0, 45.0, 200.0])
     ref = one_by_one(k, y, 400.0, params=spin, threads=1, **kw)
     codes = set(np.asarray(ref.status_code).tolist())
-    assert {0, 1, 4, 16} <= codes, codes        # done, domain, not_finite, horizon
+    assert {0, 1, 5, 16} <= codes, codes        # done, domain, bad_input, horizon
     for threads in (1, 2, 3):
         batch = k.integrate(y, 400.0, params=spin, threads=threads, **kw)
         assert_same(batch, ref, f"{method}, {threads} thread(s)")

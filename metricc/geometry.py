@@ -826,7 +826,7 @@ class _Sampler:
     over points (m, dim). Built once per derivation and shared by every numerical check.
 
     anchors: the scales points are drawn around (1 and the parameter defaults); region: per
-    coordinate (lo, hi) or None, from the spec's [region] table."""
+    coordinate (lo, hi) or None, from the spec's [sampling] table."""
 
     def __init__(self, spec: Spec, metric, domain, coords, params):
         from .sampling import anchor_scales
@@ -868,8 +868,8 @@ class _Sampler:
 
 
 def region_spans(spec: Spec) -> list:
-    """Per coordinate (lo, hi) from the spec's [region] table, or None."""
-    given = {name: (lo, hi) for name, lo, hi in getattr(spec, "region", ())}
+    """Per coordinate (lo, hi) from the spec's [sampling] table, or None."""
+    given = {name: (lo, hi) for name, lo, hi in spec.sampling}
     return [given.get(c) for c in spec.coordinates]
 
 
@@ -976,9 +976,9 @@ def _no_points_error(spec: Spec, sampler: _Sampler):
             if not np.any(np.isfinite(val) & (val > 0)):
                 return spec.error(f"is never finite and > 0 at the sample points{at_defaults}; "
                                   "each [domain] expression must be > 0 inside the chart "
-                                  "(a [region] table can say where to look)", "domain", name)
+                                  "(a [sampling] table can say where to look)", "domain", name)
     key = "line_element" if spec.line_element is not None else "metric"
     reason = ("no point inside [domain] where the metric is finite was found" if np.any(inside)
               else "could not find points inside [domain]")
     return spec.error(f"{reason}; check the domain expressions (each must be > 0 inside the "
-                      "chart) and the metric, or give a [region]", None, key)
+                      "chart) and the metric, or give a [sampling] table", None, key)

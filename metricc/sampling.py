@@ -1,6 +1,6 @@
 """Random points inside a spec's domain (NumPy only).
 
-A spec may say where each coordinate is sampled (its ``[region]`` table: ``r = [2.5, 50]``);
+A spec may say where each coordinate is sampled (its ``[sampling]`` table: ``r = [2.5, 50]``);
 coordinates without one are drawn uniform in [-s, s] around the spec's own scales: s is an
 anchor (1 or the magnitude of a parameter default, so a mass of 1e8 puts points near 1e8)
 times 10^u with u uniform in [-0.5, 1.5]. Only if too few points land inside the domain are

@@ -23,7 +23,8 @@ MIN_DIM, MAX_DIM = 2, 8
 MAX_SPEC_BYTES = 1_000_000
 
 TOP_LEVEL_KEYS = ("name", "summary", "coordinates", "signature", "parameters", "define",
-                  "metric", "line_element", "domain", "events", "invariants", "kernels")
+                  "metric", "line_element", "domain", "events", "invariants", "kernels",
+                  "sampling")
 # Kernel groups generated only on request (they cost build time and code size).
 OPTIONAL_KERNELS = ("curvature", "jacobian")
 
@@ -88,6 +89,9 @@ class Spec:
     source: str
     canonical: str
     sha256: str
+    # (coordinate, low, high) in file order: where the numerical checks of the build and
+    # ``metricc verify`` draw that coordinate (not a limit on integrations)
+    sampling: tuple[tuple[str, float, float], ...] = ()
 
     @property
     def dim(self) -> int:
@@ -202,6 +206,7 @@ class _Validator:
                        | {"norm"})
         invariants = self.labelled_table("invariants", known | state_names, coordinates)
         kernels = self.kernel_groups()
+        sampling = self.sampling(coordinates)
         canonical = json.dumps({
             "name": name, "summary": summary, "coordinates": list(coordinates),
             "signature": signature,
@@ -213,12 +218,15 @@ class _Validator:
             "events": [[k, e.text] for k, e in events],
             "invariants": [[k, e.text] for k, e in invariants],
             "kernels": list(kernels),
+            # only when given, so specs without it keep their hashes
+            **({"sampling": [[c, repr(lo), repr(hi)] for c, lo, hi in sampling]}
+               if sampling else {}),
         }, sort_keys=True, separators=(",", ":"), ensure_ascii=True)
         return Spec(path=self.path, name=name, summary=summary, coordinates=coordinates,
                     signature=signature, parameters=parameters, defines=defines,
                     metric=metric, line_element=line_element, domain=domain, events=events,
                     invariants=invariants, kernels=kernels, source=self.text,
-                    canonical=canonical,
+                    canonical=canonical, sampling=sampling,
                     sha256=hashlib.sha256(canonical.encode()).hexdigest())
 
     # -- top-level keys ------------------------------------------------------------------
@@ -384,6 +392,28 @@ class _Validator:
                                 if near else f"; choose from {', '.join(OPTIONAL_KERNELS)}"),
                                 None, "kernels")
         return tuple(sorted(set(value)))
+
+    def sampling(self, coords) -> tuple[tuple[str, float, float], ...]:
+        """[sampling]: coordinate = [low, high], where validation and verify draw points."""
+        value = self.data.get("sampling", {})
+        if not isinstance(value, dict):
+            raise self.fail("must be a table: write [sampling] and one line per coordinate, "
+                            "e.g. r = [2.5, 50]", None, "sampling")
+        out = []
+        for cname, span in value.items():
+            if cname not in coords:
+                near = ex.closest(cname, coords) if len(cname) <= MAX_NAME_LENGTH else None
+                raise self.fail("not a coordinate" + (f" (did you mean {near!r}?)" if near else
+                                f"; coordinates are {', '.join(coords)}"), "sampling", cname)
+            if not (isinstance(span, list) and len(span) == 2 and all(
+                    isinstance(v, (int, float)) and not isinstance(v, bool) for v in span)):
+                raise self.fail("must be [low, high], two numbers", "sampling", cname)
+            lo, hi = float(span[0]), float(span[1])
+            if not (abs(lo) <= 1e300 and abs(hi) <= 1e300 and lo < hi):
+                raise self.fail(f"must be [low, high] with low < high, both within 1e300 (got "
+                                f"[{lo!r}, {hi!r}])", "sampling", cname)
+            out.append((cname, lo, hi))
+        return tuple(out)
 
     # -- helpers -------------------------------------------------------------------------
     def table(self, name: str) -> dict:

@@ -66,8 +66,11 @@ def test_show_text_matches_textbook_schwarzschild(capsys):
     assert main(["show", str(SPECS / "schwarzschild.toml")]) == 0
     text = capsys.readouterr().out
     # Closed forms of the Schwarzschild Christoffel symbols (Carroll 2004, ch. 5; the equation
-    # number 5.15 is from memory), in the printer's canonical spelling.
-    assert "Gamma^t_{t r} = M/(r*(-2*M + r))" in text
+    # number 5.15 is from memory), in the printer's canonical spelling and in terms of the
+    # spec's helper f = 1 - 2M/r: M/(f r^2) = M/(r (r - 2M)), f M/r^2 = M (r - 2M)/r^3.
+    assert "f = -2*M/r + 1" in text
+    assert "Gamma^t_{t r} = M/(f*r^2)" in text
+    assert "Gamma^r_{t t} = M*f/r^2" in text
     assert "Gamma^theta_{phi phi} = -sin(theta)*cos(theta)" in text
     assert "Gamma^phi_{theta phi} = cos(theta)/sin(theta)" in text
     assert "g_{theta theta} = r^2" in text

@@ -490,10 +490,7 @@ def _check_events(spec: Spec, sampler: "_Sampler", events, coords, params) -> No
     NaN."""
     if not events:
         return
-    if hasattr(sampler, "sample"):
-        points = sampler.sample(SAMPLE_POINTS, seed=20261201)
-    else:
-        points = sample_inside(sampler.accept, sampler.dim, SAMPLE_POINTS)
+    points = sampler.sample(SAMPLE_POINTS, seed=20261201)
     if len(points) == 0:
         return
     values = np.asarray(sampler.defaults, dtype=float)

@@ -154,6 +154,7 @@ def _toml_error(exc: tomllib.TOMLDecodeError, text: str, path: str) -> SpecError
         message = message[:m.start()].strip()
     elif "end of document" in message:
         line = text.count("\n") + 1
+        column = len(text) - text.rfind("\n")
     context = _context_line(text, line, column)
     return SpecError(f"invalid TOML: {message}", path=path, line=line, column=column,
                      context=context)

@@ -34,9 +34,10 @@ def schwarzschild(name: str, mass: str, extra: str = "") -> str:
 
 
 VALID = {
-    # Expanding universe: flat FLRW with a(t) = exp(H t), de Sitter space in flat slicing
-    # (e.g. Carroll, Spacetime and Geometry (2004), eq. 8.? , from memory). exp(2 H t)
-    # overflows far out in t: such points are skipped, not called singular.
+    # Expanding universe: flat FLRW with a(t) = exp(H t), de Sitter space in its flat
+    # (steady-state) slicing (Hawking & Ellis, The Large Scale Structure of Space-Time (1973),
+    # section 5.2, from memory). exp(2 H t) overflows far out in t: such points are skipped,
+    # not called singular.
     "de_sitter": '''name = "de_sitter"
 coordinates = ["t", "x", "y", "z"]
 signature = "-+++"

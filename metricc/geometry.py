@@ -541,17 +541,27 @@ def _metric_from_line_element(spec: Spec, env: dict, coords) -> sp.ImmutableMatr
     return sp.ImmutableMatrix(entries)
 
 
+ZERO_RTOL = 1e-12   # a sum is zero when it is this small against the sum of its |terms|
+
+
 def _numerically_zero(expr: sp.Expr) -> bool:
+    """Is a sum that sympy did not cancel zero at random points (all symbols in 0.3 .. 3)?
+
+    Judged against the size of its terms, not an absolute threshold: a leftover 1e-13*dt in
+    a line element is a real linear term, while terms of 1e8 cancelling to 1e-8 are zero."""
     syms = sorted(expr.free_symbols, key=lambda s: s.name)
-    f = sp.lambdify(syms, expr, modules="numpy")
+    f = sp.lambdify(syms, list(sp.Add.make_args(expr)), modules="numpy")
     rng = np.random.default_rng(7)
     try:
         with np.errstate(all="ignore"):
-            vals = np.asarray(f(*rng.uniform(0.3, 3.0, size=(len(syms), 16))), dtype=float)
+            terms = np.array([np.broadcast_to(np.asarray(v, dtype=float), (16,)) for v in
+                              f(*rng.uniform(0.3, 3.0, size=(len(syms), 16)))])
     except (ArithmeticError, TypeError, ValueError):    # beyond double range: not zero
         return False
-    vals = vals[np.isfinite(vals)]
-    return vals.size > 0 and bool(np.all(np.abs(vals) < 1e-12))
+    with np.errstate(all="ignore"):
+        total, size = terms.sum(axis=0), np.abs(terms).sum(axis=0)
+    ok = np.isfinite(total) & np.isfinite(size)
+    return bool(np.any(ok) and np.all(np.abs(total[ok]) <= ZERO_RTOL * size[ok]))
 
 
 # -- inverse strategy ----------------------------------------------------------------------

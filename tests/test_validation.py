@@ -327,3 +327,21 @@ def test_verify_numpy_only_catches_a_one_in_a_million_christoffel_change(tmp_pat
     assert main(["verify", str(spec), "--dir", str(out), "--points", "8"]) == 1
     report = capsys.readouterr().out
     assert re.search(r"Christoffel vs finite differences .* FAIL", report), report
+
+
+def test_line_element_with_a_tiny_linear_term_is_refused():
+    # 1e-13*dt is a linear term however small (it used to fall under an absolute 1e-12)
+    text = HEAD2 + 'line_element = "-dt^2 + dr^2 + 1e-13*dt"\n'
+    with pytest.raises(SpecError, match="homogeneous"):
+        derive(parse_spec(text, "x.toml"))
+
+
+def test_line_element_with_large_terms_that_cancel_is_accepted():
+    # 1e8 sin^2 r + 1e8 cos^2 r - 1e8 (sin^2 + cos^2 = 1) is zero to rounding, about 1e-8 in
+    # absolute terms: judged against the size of its terms it is zero.
+    from metricc.geometry import _numerically_zero
+    import sympy as sp
+    r = sp.Symbol("r", positive=True)
+    assert _numerically_zero(sp.Add(sp.Float(1e8) * sp.sin(r) ** 2, sp.Float(1e8) * sp.cos(r) ** 2,
+                                    sp.Float(-1e8), evaluate=False))
+    assert not _numerically_zero(sp.Float(1e-13) * r)

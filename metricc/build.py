@@ -297,6 +297,7 @@ def manifest_of(result) -> dict:
         "events": list(ks.events),
         "invariants": list(ks.invariants),
         "groups": list(ks.groups),
+        "nan_where": list(ks.nan_where),
         "signature": list(ks.signature),
         "inverse_strategy": ks.inverse_strategy,
         "inverse_blocks": list(ks.inverse_blocks),

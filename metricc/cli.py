@@ -247,6 +247,11 @@ def _summary(r, out: Path, written: list[str]) -> None:
     unchanged = [f for f in files if f not in written]
     print(f"  wrote: {', '.join(written) or 'nothing'}"
           + (f"; unchanged: {', '.join(unchanged)}" if unchanged else ""))
+    for radicand in ks.nan_where:
+        print(f"  note: where {radicand} = 0 the kernels that differentiate the metric "
+              f"(christoffel, the right-hand sides, curvature, Jacobians) return NaN: the "
+              f"derivative of its square root is 0/0 there, even where the metric is smooth; "
+              f"integrations stop at such a point rather than pass through it")
     from .pipeline import slow_stages
     slow = slow_stages(r)
     if slow:

@@ -99,6 +99,7 @@ class KernelSet:
     inverse_blocks: tuple[dict, ...] = field(default=())
     invariants: tuple[str, ...] = ()
     groups: tuple[str, ...] = ()
+    nan_where: tuple[str, ...] = ()    # see vanishing_radicands
 
     @property
     def dim(self) -> int:
@@ -136,6 +137,43 @@ def sech2_form(expr: sp.Expr) -> sp.Expr:
         return sp.Add(*terms) if len(terms) != len(add.args) else add
 
     return expr.replace(lambda e: e.is_Add, fix)
+
+
+def vanishing_radicands(geo: Geometry) -> tuple[str, ...]:
+    """Radicands s of square roots in the metric that are sums of squares of two or more
+    affine functions of the coordinates, such as (x - v*t)^2 + y^2 + z^2: the distance to a
+    point or a line (a warp bubble's centre, a polar axis), written with the spec's names.
+
+    d sqrt(s) = ds / (2 sqrt(s)) is 0/0 where s = 0, so every kernel built from derivatives of
+    the metric returns NaN there, also where the metric itself is smooth (a removable
+    singularity, e.g. f(sqrt(s)) with an even f). ``metricc build`` says so rather than let
+    the NaN surface unexplained."""
+    coords = set(geo.coords)
+    names = {c: sp.Symbol(n) for c, n in zip(geo.coords, geo.spec.coordinates)}
+    names.update({p: sp.Symbol(n) for p, (n, _) in zip(geo.params, geo.spec.parameters)})
+
+    def affine(b: sp.Expr) -> bool:
+        try:
+            return sp.Poly(b, *sorted(coords, key=str)).total_degree() == 1
+        except sp.PolynomialError:
+            return False
+
+    def squares(e: sp.Expr) -> bool:
+        if not e.is_Add or len(e.args) < 2:
+            return False
+        for t in e.args:
+            c, rest = t.as_coeff_Mul()
+            if not (c.is_positive and rest.is_Pow and rest.exp == 2 and affine(rest.base)):
+                return False
+        return True
+
+    found = {}
+    for e in set(geo.metric):
+        for p in e.atoms(sp.Pow):
+            if p.exp.is_Rational and p.exp.q == 2 and squares(p.base):
+                text = str(p.base.xreplace(names)).replace("**", "^")
+                found[text] = None
+    return tuple(sorted(found))
 
 
 def _with_accurate_derivatives(geo: Geometry) -> Geometry:
@@ -201,7 +239,7 @@ def build_kernels(geo: Geometry, extra: tuple[str, ...] = ()) -> KernelSet:
                     "cost_numeric": b.cost_numeric} for b in geo.blocks)
     return KernelSet(name=spec.name, summary=spec.summary, spec_sha256=spec.sha256,
                      invariants=tuple(n for n, _ in geo.invariants),
-                     groups=tuple(sorted(groups)),
+                     groups=tuple(sorted(groups)), nan_where=vanishing_radicands(geo),
                      coordinates=spec.coordinates, parameters=spec.parameters,
                      param_symbols=geo.params, kernels=tuple(kernels),
                      ignorable=tuple(spec.coordinates[k] for k in geo.ignorable),

@@ -501,8 +501,10 @@ class FanPlot:
     launch: (rays,) the launch angle in radians (or the speed, for a fan along the time axis).
     lam: (S,) affine parameters of the samples. samples: (rays, S, 2*dim) states, NaN after a
     stop. status: (rays,) how each ray ended. final: (rays, 2*dim) the states where they
-    ended. trajectories: per ray, the (n, dim) positions up to its stop (the stop included).
-    xy: per ray, the (n, 2) plotted points.
+    ended. trajectories: per ray, the (n, dim) positions up to its stop (the stop included),
+    in the spec's units (radians). xy: per ray, the (n, 2) plotted points: in degrees for the
+    axes in ``degrees``, wrapped into [-180, 180) degrees (or [-pi, pi)) for the axes in
+    ``wrapped``, with a NaN row where a wrapped line crosses the seam.
     """
     name: str
     coordinates: tuple
@@ -518,6 +520,8 @@ class FanPlot:
     trajectories: list
     xy: list
     stop_radius: float | None = None
+    degrees: tuple = ()     # plotted axes drawn in degrees
+    wrapped: tuple = ()     # plotted axes wrapped into one turn (lines broken at the seam)
 
     def figure(self):
         """A matplotlib Figure (no pyplot state) with the plot."""
@@ -543,12 +547,16 @@ class FanPlot:
             ax.set_xlabel(f"{a} cos({b})")
             ax.set_ylabel(f"{a} sin({b})")
         else:
-            sx, sy = self.start[self.coordinates.index(a)], self.start[self.coordinates.index(b)]
-            ax.set_xlabel(a)
-            ax.set_ylabel(b)
+            sx, sy = (_plotted(self.start[self.coordinates.index(c)], c in self.degrees,
+                               c in self.wrapped) for c in (a, b))
+            ax.set_xlabel(a + (" (degrees)" if a in self.degrees else ""))
+            ax.set_ylabel(b + (" (degrees)" if b in self.degrees else ""))
+        # plain tick values: an offset such as "1e-6 + 0.5" hides the coordinates themselves
+        ax.ticklabel_format(useOffset=False)
         ax.plot([sx], [sy], "o", color="k", ms=5, zorder=5)
         ax.grid(True, lw=0.4, alpha=0.5)
-        where = ", ".join(f"{c}={v:.4g}" for c, v in zip(self.coordinates, self.start))
+        where = ", ".join(f"{c}={math.degrees(v):.4g} deg" if c in self.degrees else
+                          f"{c}={v:.4g}" for c, v in zip(self.coordinates, self.start))
         ax.set_title(f"{self.name}: {n} {self.kind} geodesic{'s' if n != 1 else ''} "
                      f"from ({where})", fontsize=9)
         fig.tight_layout()
@@ -570,9 +578,49 @@ def _colormap():
     return colormaps["viridis"]
 
 
-def render_fan(k, at, axes=None, polar=False, rays=16, lam=20.0, kind=None, params=None,
+# Coordinate names that conventionally denote an azimuth (one turn = 2 pi): wrapped by default
+# when plotted as a plain (not polar) axis.
+AZIMUTH_NAMES = ("phi", "varphi", "lon", "longitude", "azimuth")
+LAM_FACTOR = 2.0   # default affine length: this many times the start's length scale
+
+
+def _plotted(value, degrees: bool, wrap: bool):
+    """A coordinate value (radians) as plotted: wrapped into [-pi, pi), then in degrees."""
+    v = np.asarray(value, dtype=np.float64)
+    if wrap:
+        v = (v + np.pi) % (2 * np.pi) - np.pi
+    return np.degrees(v) if degrees else v
+
+
+def _break_at_seams(pts: np.ndarray, cols) -> np.ndarray:
+    """(n, 2) points with a NaN row inserted wherever a wrapped column jumps by more than half
+    a turn (matplotlib leaves a gap there instead of a line across the plot)."""
+    if len(pts) < 2 or not cols:
+        return pts
+    jump = np.zeros(len(pts) - 1, dtype=bool)
+    for c, turn in cols:
+        jump |= np.abs(np.diff(pts[:, c])) > turn / 2
+    where = np.nonzero(jump)[0] + 1
+    return np.insert(pts, where, np.nan, axis=0)
+
+
+def default_lam(k, at, ia, ib, params=None) -> float:
+    """The default affine length of a fan: LAM_FACTOR times the larger of the two axes' length
+    scales at the start, sqrt(|g_ii|) * max(|x_i|, 1): the proper length of the start's own
+    coordinate value (r0 for a radius), or of one coordinate unit (one radian of an angle),
+    whichever is longer. Kerr at r = 10: about 22 M; the WGS84 ellipsoid: about 12,700 km
+    (one radian of latitude is 6,357 to 6,400 km); the unit sphere: 2 to 3 radii."""
+    g = np.asarray(k.metric(np.asarray(at, dtype=np.float64), params), dtype=np.float64)
+    scale = max(math.sqrt(abs(g[i, i])) * max(abs(float(at[i])), 1.0) for i in (ia, ib))
+    if not (math.isfinite(scale) and scale > 0):
+        raise ValueError(f"{k.name}: cannot choose a default lam at the start point (the "
+                         "metric has no finite length scale there); give lam")
+    return LAM_FACTOR * scale
+
+
+def render_fan(k, at, axes=None, polar=False, rays=16, lam=None, kind=None, params=None,
                progress=None, samples=400, speed=0.5, angles=None, observer="static",
-               rtol=1e-10) -> FanPlot:
+               rtol=1e-10, degrees=(), wrap=None) -> FanPlot:
     """A fan of geodesics from the point ``at`` (dim,), in the plane of two coordinates.
 
     axes: two coordinate names (default: the first two coordinates other than time). kind:
@@ -584,7 +632,13 @@ def render_fan(k, at, axes=None, polar=False, rays=16, lam=20.0, kind=None, para
     null rays are u = e_0 + direction; "unit" rays are spacelike unit vectors. If one axis is
     the time coordinate, timelike rays get speeds spread over (-speed, speed) along the other
     axis and null and unit rays are the two directions +-e. Integrated to affine parameter
-    ``lam`` with ``samples`` samples per ray and the spec's events.
+    ``lam`` (default: :func:`default_lam`, from the metric's length scale at the start) with
+    ``samples`` samples per ray and the spec's events.
+
+    degrees: names of plotted coordinates to draw in degrees (``at`` stays in the spec's
+    units, radians). wrap: names of plotted coordinates to wrap into one turn; default the
+    plotted coordinates named like an azimuth (AZIMUTH_NAMES); not used for polar plots,
+    whose angle is periodic anyway.
     """
     from .observers import _lorentzian, _riemannian, time_index
     at = np.asarray(at, dtype=np.float64)
@@ -610,6 +664,14 @@ def render_fan(k, at, axes=None, polar=False, rays=16, lam=20.0, kind=None, para
             raise ValueError(f"{k.name}: unknown coordinate {a!r} in axes (coordinates: "
                              f"{', '.join(k.coordinates)})")
     ia, ib = (k.coordinates.index(a) for a in axes)
+    degrees = tuple(degrees)
+    wrap = tuple(c for c in axes if c in AZIMUTH_NAMES) if wrap is None else tuple(wrap)
+    for c in degrees + wrap:
+        if c not in axes:
+            raise ValueError(f"{c!r} is not one of the plotted coordinates "
+                             f"({', '.join(axes)}); degrees and wrapping apply to those")
+    if polar:
+        wrap = ()
     if kind is None:
         kind = "null" if lorentz else "unit"
     if kind not in ("null", "timelike", "unit"):
@@ -619,7 +681,7 @@ def render_fan(k, at, axes=None, polar=False, rays=16, lam=20.0, kind=None, para
     rays = int(rays)
     if rays < 1:
         raise ValueError(f"rays must be at least 1, got {rays}")
-    lam = float(lam)
+    lam = default_lam(k, at, ia, ib, params) if lam is None else float(lam)
     if not np.isfinite(lam) or lam == 0:
         raise ValueError(f"lam must be a finite, non-zero affine parameter, got {lam}")
     if int(samples) < 2:
@@ -677,12 +739,16 @@ def render_fan(k, at, axes=None, polar=False, rays=16, lam=20.0, kind=None, para
             xy.append(np.stack([pts[:, ia] * np.cos(pts[:, ib]), pts[:, ia] * np.sin(pts[:, ib])],
                                axis=-1))
         else:
-            xy.append(pts[:, [ia, ib]])
+            cols = [_plotted(pts[:, i], c in degrees, c in wrap) for i, c in ((ia, axes[0]),
+                                                                             (ib, axes[1]))]
+            seams = [(j, 360.0 if axes[j] in degrees else 2 * np.pi) for j in (0, 1)
+                     if axes[j] in wrap]
+            xy.append(_break_at_seams(np.stack(cols, axis=-1), seams))
     stop_radius = _stop_radius(k, at, ia, params) if polar else None
     return FanPlot(name=k.name, coordinates=k.coordinates, start=at, axes=axes, polar=polar,
                    kind=kind, launch=np.asarray(launch), lam=lam_s, samples=S,
                    status=res.status, final=res.y, trajectories=trajectories, xy=xy,
-                   stop_radius=stop_radius)
+                   stop_radius=stop_radius, degrees=degrees, wrapped=wrap)
 
 
 def _stop_radius(k, at, ia, params):
@@ -784,8 +850,17 @@ def add_parser(subparsers):
     f.add_argument("--polar", action="store_true",
                    help="plot the axes as (radius, angle): x = r cos(angle), y = r sin(angle)")
     f.add_argument("--rays", type=int, default=16, metavar="N", help="number of geodesics")
-    f.add_argument("--lam", type=float, default=20.0, metavar="L",
-                   help="affine parameter to integrate to (default 20)")
+    f.add_argument("--lam", type=float, default=None, metavar="L",
+                   help="affine parameter to integrate to (default: twice the start's length "
+                        "scale along the plotted axes, sqrt(g_ii) * max(|x_i|, 1): about 22 "
+                        "for Kerr at r = 10 M, 12,700 km on the WGS84 ellipsoid)")
+    f.add_argument("--degrees", default="", metavar="NAME,NAME",
+                   help="coordinates given in --at and plotted in degrees instead of radians "
+                        "(e.g. lat,lon)")
+    f.add_argument("--wrap", default=None, metavar="NAME,NAME",
+                   help="plotted coordinates to wrap into one turn, [-180, 180) degrees or "
+                        "[-pi, pi), breaking lines at the seam (default: those named phi, "
+                        "varphi, lon, longitude or azimuth; --wrap= for none)")
     f.add_argument("--kind", choices=("timelike", "null", "unit"), default=None,
                    help="default: null (Lorentzian metric) or unit (Riemannian)")
     f.add_argument("--speed", type=float, default=0.5,
@@ -839,6 +914,15 @@ def run(args) -> int:
             axes = None
             if args.axes:
                 axes = tuple(a.strip() for a in args.axes.split(",") if a.strip())
+            degrees = tuple(c.strip() for c in args.degrees.split(",") if c.strip())
+            wrap = None if args.wrap is None else tuple(
+                c.strip() for c in args.wrap.split(",") if c.strip())
+            for c in degrees:
+                if c not in k.coordinates:
+                    raise BuildError(f"--degrees: {c!r} is not a coordinate of {k.name} "
+                                     f"({', '.join(k.coordinates)})")
+                if len(at) == k.dim:      # --at gives these in degrees
+                    at[k.coordinates.index(c)] = math.radians(at[k.coordinates.index(c)])
             angles = None
             if args.angles:
                 angles = tuple(float(v) for v in args.angles.split(","))
@@ -846,11 +930,14 @@ def run(args) -> int:
                     raise BuildError(f"--angles expects DEG0,DEG1, got {args.angles!r}")
             fan = render_fan(k, at, axes, args.polar, args.rays, args.lam, args.kind,
                              params=params or None, progress=bar, samples=args.samples,
-                             speed=args.speed, angles=angles, rtol=args.rtol)
+                             speed=args.speed, angles=angles, rtol=args.rtol,
+                             degrees=degrees, wrap=wrap)
             fan.save(out)
             names, counts = np.unique(fan.status, return_counts=True)
             summary = ", ".join(f"{c} {n}" for n, c in zip(names, counts))
-            print(f"{k.name}: {len(fan.status)} geodesics ({summary}) -> {out}")
+            n = len(fan.status)
+            print(f"{k.name}: {n} geodesic{'' if n == 1 else 's'} to lambda = {fan.lam[-1]:.4g}"
+                  f" ({summary}) -> {out}")
         else:  # pragma: no cover - argparse restricts the kinds
             raise BuildError(f"unknown render kind {args.render_kind!r}")
     except ValueError as exc:

@@ -461,3 +461,56 @@ def test_number_parser():
     assert render._number("1.5") == 1.5
     with pytest.raises(ValueError):
         render._number("pie")
+
+
+# -- fan defaults from the spec's scale, degrees, wrapping (issue 12) ------------------------
+def test_fan_default_lam_follows_the_spec_scale():
+    # The old fixed default (lam = 20) drew 20-metre geodesics on the WGS84 ellipsoid. The
+    # default is now twice the start's length scale: sqrt(g_ii) * max(|x_i|, 1).
+    ell = metricc.load(SPECS / "ellipsoid.toml", backend="numpy")
+    fan = render.render_fan(ell, (0.5, 0.2), None, False, 4, samples=20)
+    # one radian of latitude is the meridional radius of curvature, 6,335 to 6,400 km on
+    # WGS84 (common practice): lam = 2 * M(0.5) ~ 12,700 km, a third of a meridian
+    assert 1.2e7 < fan.lam[-1] < 1.3e7
+    assert np.max(np.abs(fan.xy[0][:, 0] - 0.5)) > 0.1           # moves by > 0.1 rad
+    schw = metricc.load(SPECS / "schwarzschild.toml", backend="numpy")
+    fan = render.render_fan(schw, (0, 10.0, PI / 2, 0), ("r", "phi"), True, 4, samples=20)
+    # 2 * sqrt(g_rr) * r0 = 2 * 10 / sqrt(1 - 2/10) = 22.36 (M = 1)
+    assert fan.lam[-1] == pytest.approx(20 / math.sqrt(0.8), rel=1e-12)
+
+
+def test_fan_wraps_azimuths_and_breaks_lines_at_the_seam():
+    sphere = metricc.load(SPECS / "sphere.toml", backend="numpy")
+    fan = render.render_fan(sphere, (1.0, 3.0), None, False, 6, 20.0, samples=400)
+    assert fan.wrapped == ("phi",)
+    raw = np.concatenate([p[:, 1] for p in fan.trajectories])
+    assert raw.max() > np.pi or raw.min() < -np.pi               # the geodesics go round
+    for pts in fan.xy:
+        phi = pts[:, 1][np.isfinite(pts[:, 1])]
+        assert np.all((-np.pi <= phi) & (phi < np.pi))
+        step = np.abs(np.diff(pts[:, 1]))
+        assert np.all(step[np.isfinite(step)] < np.pi)           # no line across the plot
+    assert any(np.isnan(p[:, 1]).any() for p in fan.xy)
+    off = render.render_fan(sphere, (1.0, 3.0), None, False, 6, 20.0, samples=400, wrap=())
+    assert max(np.nanmax(np.abs(p[:, 1])) for p in off.xy) > np.pi
+
+
+def test_fan_degrees_and_plain_tick_labels(tmp_path):
+    pytest.importorskip("matplotlib")
+    png = tmp_path / "ell.png"
+    rc, out, err = run_cli(["render", "fan", str(SPECS / "ellipsoid.toml"), "--out", str(png),
+                            "--at", "30,10", "--degrees", "lat,lon", "--rays", "3",
+                            "--samples", "20", "--no-progress"])
+    assert rc == 0, err
+    ell = metricc.load(SPECS / "ellipsoid.toml", backend="numpy")
+    fan = render.render_fan(ell, (math.radians(30), math.radians(10)), None, False, 3,
+                            samples=20, degrees=("lat", "lon"))
+    np.testing.assert_allclose(fan.xy[0][0], [30.0, 10.0], rtol=1e-12)
+    ax = fan.figure().axes[0]
+    assert ax.get_xlabel() == "lat (degrees)" and ax.get_ylabel() == "lon (degrees)"
+    # no "1e-6 + 0.5" offset on the axes
+    assert not ax.xaxis.get_major_formatter().get_useOffset()
+    assert not ax.yaxis.get_major_formatter().get_useOffset()
+    rc, out, err = run_cli(["render", "fan", str(SPECS / "ellipsoid.toml"), "--out", str(png),
+                            "--at", "30,10", "--degrees", "height"])
+    assert rc == 1 and "--degrees" in err and "Traceback" not in err

@@ -30,8 +30,9 @@ class HelperForm:
     coords: display symbols of the coordinates (spec names). metric: (dim, dim) g_{ij} in
     coordinates, parameters and helper symbols. dmetric: tuple over k of (dim, dim) d_k g_{ij},
     by the chain rule, in terms of helpers and named helper derivatives. definitions: symbol ->
-    its definition (helpers in terms of earlier ones; derivative symbols), in an order where
-    each refers only to those before it. latex: symbol -> LaTeX for every symbol used.
+    its definition (helpers in terms of earlier ones; derivative symbols). helper_order: the
+    defined symbols, helpers in spec order then derivatives by helper and coordinate, an order
+    in which each refers only to those before it. latex: symbol -> LaTeX for every symbol.
     """
     coords: tuple
     metric: sp.ImmutableMatrix

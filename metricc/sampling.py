@@ -21,8 +21,8 @@ WIDEST = (-6.0, 7.5)       # log10 of the spread after every widening round
 
 
 def anchor_scales(defaults: Sequence[float] = ()) -> np.ndarray:
-    """1 and the magnitudes of the non-zero parameter defaults (within 1e-30 .. 1e30)."""
-    mags = [abs(float(v)) for v in defaults if 1e-30 <= abs(float(v)) <= 1e30]
+    """1 and the magnitudes of the non-zero parameter defaults (within 1e-100 .. 1e100)."""
+    mags = [abs(float(v)) for v in defaults if 1e-100 <= abs(float(v)) <= 1e100]
     return np.unique(np.array([1.0] + mags))
 
 
@@ -63,7 +63,9 @@ def sample_inside(accept: Callable[[np.ndarray], np.ndarray], dim: int, n: int,
     Deterministic for a given seed. Returns fewer points (possibly none) if the domain is hard
     to hit. The first half of the rounds draw moderate scales around the anchors; later rounds
     widen the spread step by step towards WIDEST (for domains far from every anchor).
-    Coordinates with a region are always drawn from it.
+    Coordinates with a region are always drawn from it. Of the accepted points (about 2n are
+    gathered) the n that go least beyond the moderate range are kept: a large mass needs r
+    near 1e30, but the angles beside it are better near 1 (at 1e30 no step resolves sin).
     """
     rng = np.random.default_rng(seed)
     found: list[np.ndarray] = []
@@ -78,10 +80,16 @@ def sample_inside(accept: Callable[[np.ndarray], np.ndarray], dim: int, n: int,
             ok = np.asarray(accept(cand), dtype=bool)
         found.append(cand[ok])
         count += int(ok.sum())
-        if count >= n:
+        if count >= 2 * n:
             break
     pts = np.concatenate(found, axis=0) if found else np.empty((0, dim))
-    return pts[:n]
+    with np.errstate(divide="ignore"):
+        excess = np.maximum(np.log10(np.abs(pts)) - MODERATE[1], 0.0)
+    for c, span in enumerate(region or ()):
+        if span is not None:
+            excess[:, c] = 0.0
+    order = np.argsort(excess.sum(axis=1), kind="stable")
+    return pts[order[:n]]
 
 
 def neighbours(rng: np.random.Generator, point: np.ndarray, k: int,

@@ -77,7 +77,8 @@ def metric_derivatives(k, x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """d_c g_ab and an error bound of each, both (m, dim, dim, dim) as [m, c, a, b].
 
     Fourth-order central differences with steps h = 0.2 s 2^-j, j < FD_LEVELS, where s is
-    the size of coordinate c at the point (|x_c|, at least 1e-3 of the point's largest). The
+    the size of coordinate c at the point (|x_c|, at least 1e-3 of the spec's smallest scale,
+    see sampling.anchor_scales). The
     rounding floor of a step is 8 eps (sqrt(d_a d_b) + |x_c| |D|) / h: sqrt(d_a d_b) is the
     natural size of g_ab (the equilibrating scaling, see sampling.log_scales), not the entry
     itself, which may be a cancellation far below its terms (a warp bubble's shape function
@@ -91,8 +92,10 @@ def metric_derivatives(k, x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     infinite bound.
     """
     m, dim = x.shape
-    size = np.maximum(np.abs(x), 1e-3 * np.max(np.abs(x), axis=1, keepdims=True))
-    size = np.maximum(size, 1e-300)
+    # a coordinate near 0 is differenced on the spec's smallest scale (1e-3 of the smallest
+    # anchor), never on another coordinate's: an angle of 0.04 beside r = 1e31
+    floor_size = 1e-3 * float(np.min(anchor_scales(list(k.parameters.values()))))
+    size = np.maximum(np.abs(x), floor_size)
     ladder = 0.2 * 2.0 ** -np.arange(FD_LEVELS)
     g0 = k.metric(x)
     ls = log_scales(g0)

@@ -540,49 +540,66 @@ COMPILE_TIMEOUT = 600
 
 def kernel_units(manifest: dict) -> list[tuple[str, list[str]]]:
     """The kernels' translation units as (name, extra compiler flags): the core kernels at
-    the default -O3, and each optional group of the manifest in a unit of its own, compiled
-    in parallel with the others, at the optimisation GROUP_OPT gives its size."""
-    from .emit import GROUP_KERNELS
+    the default -O3, and each further section of the source (emit.source_sections: an
+    optional group, or one of its kernels above OWN_UNIT_OPS operations) in a unit of its
+    own, compiled in parallel with the others, at the optimisation GROUP_OPT gives the size
+    of its largest kernel."""
+    from .emit import source_sections
     P = manifest["name"].upper()
-    present = [g for g, names in GROUP_KERNELS.items()
-               if any(n in manifest["kernels"] for n in names)]
-    skip_groups = [f"-D{P}_SKIP_{g.upper()}" for g in present]
-    units = [("kernels", [f"-D{P}_SKIP_INTEGRATOR", *skip_groups])]
-    for g in present:
-        largest = max(manifest["kernels"][n]["ops_after"] for n in GROUP_KERNELS[g]
-                      if n in manifest["kernels"])
+    kernels = manifest["kernels"]
+    sections = source_sections({n: info["ops_after"] for n, info in sorted(kernels.items())})
+    skip = {sec: f"-D{P}_SKIP_{sec.upper()}" for sec in sections}
+    units = [("kernels", [f"-D{P}_SKIP_INTEGRATOR",
+                          *(flag for sec, flag in skip.items() if sec != "core")])]
+    for sec, names in sections.items():
+        if sec == "core":
+            continue
+        largest = max(kernels[n]["ops_after"] for n in names)
         opt = next(flags for floor, flags in GROUP_OPT if largest > floor)
-        units.append((g, [f"-D{P}_SKIP_INTEGRATOR", f"-D{P}_SKIP_CORE",
-                          *(f for f in skip_groups if f != f"-D{P}_SKIP_{g.upper()}"), *opt]))
+        units.append((sec, [f"-D{P}_SKIP_INTEGRATOR",
+                            *(flag for other, flag in skip.items() if other != sec), *opt]))
     return units
 
 
 def _run_compiler(commands: list[list[str]]) -> list[float]:
-    """Run compiler commands concurrently; raises BuildError with the first failure's
-    message (the last lines of its output). Returns each command's wall time in seconds
-    (polled every 20 ms; their output goes to files, so no pipe can fill and stall them)."""
+    """Run compiler commands concurrently, at most one per processor (each may need hundreds
+    of MB for a large unit); raises BuildError with the first failure's message (the last
+    lines of its output). Returns each command's wall time in seconds, polled every 20 ms
+    (output goes to files, so no pipe can fill and stall a compiler)."""
     t0 = time.perf_counter()
+    limit = max(1, os.cpu_count() or 1)
     logs = [tempfile.TemporaryFile(mode="w+") for _ in commands]
+    procs: list = [None] * len(commands)
+    started = [0.0] * len(commands)
+    seconds = [0.0] * len(commands)
+    failure = None
     try:
-        try:
-            procs = [subprocess.Popen(argv, stdout=log, stderr=subprocess.STDOUT, text=True)
-                     for argv, log in zip(commands, logs)]
-        except OSError as exc:
-            raise BuildError(f"C compiler failed to run: {exc}") from None
-        seconds = [0.0] * len(procs)
         while True:
-            now = time.perf_counter() - t0
+            now = time.perf_counter()
+            running = 0
             for i, p in enumerate(procs):
-                if not seconds[i] and p.poll() is not None:
-                    seconds[i] = round(now, 3)
-            if all(seconds) or now > COMPILE_TIMEOUT:
+                if p is not None and not seconds[i]:
+                    if p.poll() is None:
+                        running += 1
+                    else:
+                        seconds[i] = round(now - started[i], 3)
+            for i, argv in enumerate(commands):
+                if procs[i] is None and running < limit:
+                    try:
+                        procs[i] = subprocess.Popen(argv, stdout=logs[i],
+                                                    stderr=subprocess.STDOUT, text=True)
+                    except OSError as exc:
+                        raise BuildError(f"C compiler failed to run: {exc}") from None
+                    started[i] = time.perf_counter()
+                    running += 1
+            if all(seconds) or now - t0 > COMPILE_TIMEOUT:
                 break
             time.sleep(0.02)
-        failure = None
         for argv, proc, log in zip(commands, procs, logs):
-            if proc.poll() is None:
-                proc.kill()
-                proc.wait()
+            if proc is None or proc.poll() is None:
+                if proc is not None:
+                    proc.kill()
+                    proc.wait()
                 failure = failure or (f"C compiler timed out after {COMPILE_TIMEOUT} s "
                                       f"({' '.join(argv[:3])} ...)")
                 continue
@@ -592,6 +609,10 @@ def _run_compiler(commands: list[list[str]]) -> list[float]:
                 failure = ("C compilation failed (" + " ".join(argv[:3]) + " ...):\n"
                            + "\n".join(tail))
     finally:
+        for proc in procs:
+            if proc is not None and proc.poll() is None:
+                proc.kill()
+                proc.wait()
         for log in logs:
             log.close()
     if failure:

@@ -397,9 +397,27 @@ GROUP_KERNELS = {"curvature": ("riemann", "ricci", "ricci_scalar", "kretschmann"
                  "jacobian": ("geodesic_jacobian", "hamilton_jacobian")}
 
 
+# A kernel of an optional group above this many operations is a translation unit of its own
+# (compiled in parallel with the rest of its group).
+OWN_UNIT_OPS = 12000
+
+
 def kernel_group(name: str) -> str:
     """"core" or the optional group ("curvature", "jacobian") a kernel belongs to."""
     return next((g for g, names in GROUP_KERNELS.items() if name in names), "core")
+
+
+def source_sections(ops: dict) -> dict:
+    """The sections of the C source, each guarded by NAME_SKIP_<SECTION>: "core", one per
+    optional group, and one per group kernel above OWN_UNIT_OPS operations (named after it).
+
+    ops: kernel name -> emitted operations. Returns section -> kernel names (in ops' order),
+    core first. The build compiles each section as a unit of its own (build.kernel_units)."""
+    out: dict = {"core": []}
+    for name, n in ops.items():
+        group = kernel_group(name)
+        out.setdefault(group if group == "core" or n <= OWN_UNIT_OPS else name, []).append(name)
+    return out
 
 
 @dataclass(frozen=True)
@@ -660,12 +678,16 @@ def c_source(ks: KernelSet, env=None, preamble: str = "") -> str:
     helpers = [emit_trig.helpers(ks, P)] if emit_trig.uses_trig(ks) else []
     if any(isinstance(st, Solve) and st.order is None for k in ks.kernels for st in k.steps):
         helpers.append(_solve_helper(ks))
-    sections = {g: [] for g in ("core", *GROUP_KERNELS)}
+    section_of = {name: sec for sec, names in
+                  source_sections({k.name: k.ops_after for k in ks.kernels}).items()
+                  for name in names}
+    sections = {sec: [] for sec in dict.fromkeys(section_of.values())}
+    sections.setdefault("core", [])
     kernels = {k.name: k for k in ks.kernels}
     npar = len(ks.parameters)
     for name, single, batch in c_prototypes(ks, f"{P}_RESTRICT"):
         k = kernels[name]
-        functions = sections[kernel_group(name)]
+        functions = sections[section_of[name]]
         functions.append({"prototype": single, "body": _c_body(ks, k)})
         soa = soa_prototype(ks, k, f"{P}_RESTRICT")
         if name in TILED_KERNELS:
@@ -703,7 +725,7 @@ def c_source(ks: KernelSet, env=None, preamble: str = "") -> str:
         banner=_c_banner(ks), preamble=preamble, helpers=helpers,
         sections=[{"guard": f"{P}_SKIP_{g.upper()}", "functions": fns}
                   for g, fns in sections.items() if fns],
-        groups=[f"{P}_SKIP_{g.upper()}" for g in GROUP_KERNELS],
+        groups=[f"{P}_SKIP_{g.upper()}" for g in sections if g != "core"],
         prefix_upper=P, integrator=integrator, vector_math=vector_math_block(ks))
 
 

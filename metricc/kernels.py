@@ -564,6 +564,9 @@ def _hamilton_jacobian(geo: Geometry, metric_defs) -> Kernel:
 
 
 # -- optimisation and scheduling -----------------------------------------------------------
+FACTOR_MAX_STATEMENTS = 3000
+
+
 def _make(name, doc, input_name, input_symbols, shape, outputs, pinned, solves=()) -> Kernel:
     """Optimise one kernel: fold constants, hoist powers, CSE, schedule, drop dead code."""
     t0 = time.perf_counter()
@@ -578,12 +581,12 @@ def _make(name, doc, input_name, input_symbols, shape, outputs, pinned, solves=(
     for mat, rhs, res, _ in solves:
         needed |= _symbols_in(list(mat) + [e for col in rhs for e in col])
     pin_map = dict(pinned)
-    live_pins = []
+    live_pins = set()
     frontier = set(needed)
     while frontier:
         s = frontier.pop()
         if s in pin_map and s not in live_pins:
-            live_pins.append(s)
+            live_pins.add(s)
             frontier |= _symbols_in([pin_map[s]])
     pinned = [(s, e) for s, e in pinned if s in live_pins]
 
@@ -618,13 +621,16 @@ def _make(name, doc, input_name, input_symbols, shape, outputs, pinned, solves=(
     replacements, reduced = sp.cse(flat, symbols=sp.numbered_symbols("t", real=True),
                                    order="canonical", list=True)
     # Factoring after CSE exposes new common sums (q*a - q*b and b - a both become a - b):
-    # a second, cheap CSE pass over the now small statements shares them.
+    # a second, cheap CSE pass over the now small statements shares them. Above
+    # FACTOR_MAX_STATEMENTS (a dense 8-D curvature tensor) both passes cost more than the
+    # first CSE and save a few per cent of the operations: skipped.
     nrep = len(replacements)
-    again = [_factor_common(e) for _, e in replacements] + [_factor_common(e) for e in reduced]
-    extra, again = sp.cse(again, symbols=sp.numbered_symbols("t", start=nrep, real=True),
-                          order="canonical", list=True)
-    replacements = extra + [(sym, e) for (sym, _), e in zip(replacements, again[:nrep])]
-    reduced = again[nrep:]
+    if nrep + len(reduced) <= FACTOR_MAX_STATEMENTS:
+        again = [_factor_common(e) for _, e in replacements] + [_factor_common(e) for e in reduced]
+        extra, again = sp.cse(again, symbols=sp.numbered_symbols("t", start=nrep, real=True),
+                              order="canonical", list=True)
+        replacements = extra + [(sym, e) for (sym, _), e in zip(replacements, again[:nrep])]
+        reduced = again[nrep:]
     hoisted_red = [(s, e) for (s, _), e in zip(hoisted, reduced)]
     reduced = reduced[len(hoisted):]
 

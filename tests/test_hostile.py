@@ -127,6 +127,18 @@ def test_function_constant_beyond_double_range():
     refused(text, "metric", "r.r", "outside the range of double", token="exp(1000)")
 
 
+@pytest.mark.parametrize("default, rr", [
+    ("0", "1 + 1/a"),           # ZeroDivisionError before
+    ("1e200", "1 + a^2"),       # OverflowError before
+    ("2000", "1 + 2^a"),        # OverflowError before
+    ("-1", "2 + a^1.5"),        # TypeError before (a complex number)
+])
+def test_parameter_defaults_that_break_double_precision(default, rr):
+    """The entry is infinite or NaN at every point with these defaults: a located error."""
+    text = HEAD + f"[parameters]\na = {default}\n" + metric_spec(rr)[len(HEAD):]
+    refused(text, "metric", "r.r", "NaN", token=rr)
+
+
 def test_huge_integer_argument_of_a_function():
     """cos(123456789012345678901234567890) is a finite constant (NumPy could not take the
     cosine of a Python int beyond 64 bits: TypeError). Reference: math.cos of the nearest

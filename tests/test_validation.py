@@ -193,6 +193,44 @@ x = [8, 40]
     "mass_1e8": schwarzschild("mass_huge", "1e8"),
     "near_horizon": schwarzschild("near_horizon", "0.001",
                                   "[sampling]\nr = [0.002000002, 0.004]\n"),
+    # Anti-de Sitter space in Poincare coordinates, L^2 (-dt^2 + dx^2 + dz^2) / z^2 (e.g.
+    # Maldacena 1998 / common practice), and the Poincare disk 4 (dx^2 + dy^2) / (1 - x^2 -
+    # y^2)^2 (common practice): entries blow up at the boundary.
+    "ads_poincare": '''name = "ads_poincare"
+coordinates = ["t", "x", "z"]
+signature = "-++"
+[parameters]
+L = 1.0
+[metric]
+t.t = "-L^2/z^2"
+x.x = "L^2/z^2"
+z.z = "L^2/z^2"
+[domain]
+bulk = "z"
+''',
+    "poincare_disk": '''name = "poincare_disk"
+coordinates = ["x", "y"]
+signature = "++"
+[metric]
+x.x = "4/(1 - x^2 - y^2)^2"
+y.y = "4/(1 - x^2 - y^2)^2"
+[domain]
+inside = "1 - x^2 - y^2"
+''',
+    # A weak gravitational wave in TT gauge, h_+ = 1e-21 (linearised gravity, e.g. Misner,
+    # Thorne & Wheeler (1973) chapter 35, from memory): every Christoffel symbol is ~1e-19.
+    "tt_wave": '''name = "tt_wave"
+coordinates = ["t", "x", "y", "z"]
+signature = "-+++"
+[parameters]
+h = 1e-21
+w = 100.0
+[metric]
+t.t = "-1"
+x.x = "1 + h*cos(w*(t - z))"
+y.y = "1 - h*cos(w*(t - z))"
+z.z = "1"
+''',
     # Schwarzschild with M = 1e30 (far beyond the 3e7 the sampler used to reach)
     "mass_1e30": schwarzschild("mass_1e30", "1e30"),
     # A shipped spec that verify failed at seed 2 (Reissner 1916, Nordstroem 1918).

@@ -10,6 +10,11 @@ event; it is timed on a sample of rays and compared as rays per second in the sa
 Also: the NumPy batch integrator, and the C integrator with 1 and 2 OpenMP threads (best of
 --repeats runs each, through the public k.integrate).
 
+    python benchmarks/bench_integrate.py --straggler N_FAST [--long-steps S]
+
+NumPy backend only: one state running to max_steps among N_FAST that stop after a few steps,
+timed together and apart (what finished states cost a long run).
+
 Integrator overhead: the right-hand-side evaluations per second inside the C integrator
 (1 thread) against the raw batch kernel's rate. The raw rate is timed like bench_rhs.py's
 "C batch, direct cffi call": lib.kerr_geodesic_rhs_batch on 1e5 preallocated states, best
@@ -74,14 +79,71 @@ def best_time(fn, repeats: int, min_total: float = 0.0) -> tuple[float, int]:
     return min(times), len(times)
 
 
+def straggler(n_fast: int, long_steps: int, repeats: int, at_once: bool = False) -> None:
+    """NumPy backend: one state that runs to max_steps among n_fast that stop within a few
+    steps (at_once: at lambda = 0, so that the fast group costs next to nothing itself),
+    against the two groups integrated apart. What the fast states add to the straggler's run
+    is the cost of keeping finished states in the batch."""
+    k = metricc.load(ROOT / "specs" / "kerr.toml", backend="numpy")
+    x = np.array([0.0, 10.0, np.pi / 2, 0.0])
+    g = k.metric(x)
+    omega = 1.0 / (10.0 ** 1.5 + 0.9)          # prograde circular orbit (Bardeen et al. 1972)
+    ut = 1.0 / np.sqrt(-(g[0, 0] + 2 * g[0, 3] * omega + g[3, 3] * omega ** 2))
+    slow = np.array([[0.0, 10.0, np.pi / 2, 0.0, ut, 0.0, 0.0, omega * ut]])
+    fast = np.zeros((n_fast, 8))                # photons falling in from r = 3..4 M
+    fast[:, 1] = np.linspace(3.0, 4.0, n_fast)
+    fast[:, 2] = np.pi / 2
+    fast[:, 4] = 1.0
+    fast = k.normalize(fast, "null", solve_for=1)
+    fast[:, 5] = -np.abs(fast[:, 5])
+    if at_once:
+        fast[:, 1] = 1.44       # r+ = 1.436 < r < 1.01 r+: the horizon event stops them at 0
+    lam_end = 1e6
+
+    def run(y):
+        return k.integrate(y, lam_end, max_steps=long_steps)
+
+    both = np.concatenate([slow, fast])
+    mixed = run(both)
+    print(f"# command: python benchmarks/bench_integrate.py --straggler {n_fast} "
+          f"--long-steps {long_steps} --repeats {repeats}{' --at-once' if at_once else ''}")
+    print(f"NumPy backend, Kerr a=0.9: 1 circular orbit to max_steps={long_steps} "
+          f"(status {mixed.status[0]}) + {n_fast} infalling photons (mean "
+          f"{mixed.steps[1:].mean():.1f} steps, statuses {sorted(set(mixed.status[1:]))})")
+    # interleaved, so that a busy spell on a shared machine hits all three alike
+    times = [[_timed(lambda: run(y)) for y in (both, slow, fast)] for _ in range(repeats)]
+    t_mixed, t_slow, t_fast = np.min(times, axis=0)
+    print(f"together {t_mixed:.3f} s; apart: straggler {t_slow:.3f} s + fast {t_fast:.3f} s = "
+          f"{t_slow + t_fast:.3f} s; together / apart {t_mixed / (t_slow + t_fast):.3f} "
+          f"(CPU seconds, best of {repeats})")
+
+
+def _timed(fn) -> float:
+    """CPU seconds of fn() (the NumPy integrator is single-threaded; CPU time is less at the
+    mercy of other processes on a shared machine than wall time)."""
+    t0 = time.process_time()
+    fn()
+    return time.process_time() - t0
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--straggler", type=int, default=None, metavar="N_FAST",
+                    help="only the NumPy straggler measurement: 1 long state among N_FAST "
+                         "fast ones")
+    ap.add_argument("--at-once", action="store_true",
+                    help="with --straggler: the fast states stop at lambda = 0")
+    ap.add_argument("--long-steps", type=int, default=2000,
+                    help="max_steps of the straggler (with --straggler; default 2000)")
     ap.add_argument("--quick", action="store_true", help="10^4 rays, one run per thread count")
     ap.add_argument("--rays", type=int, default=None, help="rays (default 10^5)")
     ap.add_argument("--repeats", type=int, default=None,
                     help="timed C integrator runs per thread count, best taken (default 2; "
                          "1 with --quick)")
     args = ap.parse_args()
+    if args.straggler is not None:
+        straggler(args.straggler, args.long_steps, args.repeats or 3, args.at_once)
+        return
     n = args.rays or (10_000 if args.quick else 100_000)
     repeats = args.repeats or (1 if args.quick else 2)
     n_scipy = 20 if args.quick else 100

@@ -150,6 +150,7 @@ def cdef_text(ks: KernelSet) -> str:
     lines += [gsl_prototype(ks, f) + ";" for f in ("geodesic", "hamilton")]
     lines.append(emit_integrator.options_struct(ks))
     lines.append(emit_integrator.integrate_prototype(ks, "restrict") + ";")
+    lines.append(emit_integrator.integrate_prototype(ks, "restrict", interruptible=True) + ";")
     return "\n".join(lines) + "\n"
 
 
@@ -242,6 +243,12 @@ def c_header(ks: KernelSet, env=None) -> str:
                          " * status[n] and steps[n] (accepted steps). Parallel over states with "
                          "OpenMP when compiled with it. */",
                   "prototype": emit_integrator.integrate_prototype(ks, f"{P}_RESTRICT")})
+    decls.append({"doc": f"/* {ks.name}_integrate with a stop flag: once *interrupt (read once per "
+                         "step; NULL: none) is nonzero, every unfinished\n"
+                         f" * state stops with {P}_STATUS_INTERRUPTED (a state not yet started: "
+                         "at y0, lambda = 0). */",
+                  "prototype": emit_integrator.integrate_prototype(ks, f"{P}_RESTRICT",
+                                                                   interruptible=True)})
     return env.get_template("c_header.h.j2").render(
         banner=_c_banner(ks), guard=f"METRICC_{P}_H", prefix_upper=P, constants=constants,
         layout_doc=layout_doc, declarations=decls)

@@ -21,7 +21,7 @@ CONTMAX = 7    # dense-output coefficient vectors (DOP853: 7, DP5: 4)
 LANES = 16     # states advanced side by side (a multiple of the batch kernels' tile of 16)
 FEW = 4        # at most this many busy lanes: one-state steps (idle lanes' sums cost more)
 SOA_STAGES = max(DOP853["stages"], DP5["stages"])   # stages kept per lane (13)
-MASK_BITS = 64 # events per unsigned long long word of the options' event masks
+MASK_BITS = 64  # events per unsigned long long word of the options' event masks
 
 
 def _lit(v) -> str:
@@ -230,9 +230,8 @@ def integrator_context(ks) -> dict:
 
 
 def options_struct(ks, restrict_free: bool = False) -> str:
-    """The options struct declaration (same text for the header and cffi's cdef). Fields
-    are only ever appended, so that positional initialisers written for an older layout
-    still compile (the new fields are then zero: no interrupt flag)."""
+    """The options struct declaration (same text for the header and cffi's cdef). A spec
+    with more than 64 events gets one more field, event_mask_more, at the end."""
     words = mask_words(len(ks.events))
     more = (f"    unsigned long long event_mask_more[{words}]; /* bit b of word w: event "
             "64 (w + 1) + b */\n") if words else ""
@@ -244,17 +243,18 @@ def options_struct(ks, restrict_free: bool = False) -> str:
             f"    int form;                   /* {ks.name.upper()}_FORM_GEODESIC or _HAMILTON */\n"
             "    unsigned long long event_mask; /* bit k set: event k (< 64) of the spec is active */\n"
             "    int threads;                /* OpenMP threads; <= 0: the OpenMP default */\n"
-            "    const volatile int *interrupt; /* NULL, or a flag read once per step: when it is\n"
-            "                                   nonzero every unfinished state stops with status\n"
-            f"                                   {ks.name.upper()}_STATUS_INTERRUPTED */\n"
             + more +
             f"}} {ks.name}_integrator_options;")
 
 
-def integrate_prototype(ks, restrict: str) -> str:
+def integrate_prototype(ks, restrict: str, interruptible: bool = False) -> str:
+    """NAME_integrate's prototype; interruptible: NAME_integrate_interruptible's, the same
+    with a last argument, a flag that stops the run when it becomes nonzero."""
     r = restrict
-    return (f"void {ks.name}_integrate(size_t n, const double *{r} y0, double lam_end, "
+    name = f"{ks.name}_integrate_interruptible" if interruptible else f"{ks.name}_integrate"
+    flag = ", const volatile int *interrupt" if interruptible else ""
+    return (f"void {name}(size_t n, const double *{r} y0, double lam_end, "
             f"const double *{r} params, size_t params_stride, "
             f"const {ks.name}_integrator_options *{r} opt, size_t n_samples, "
             f"const double *{r} samples, double *{r} y_out, double *{r} lam_out, "
-            f"int *{r} status, long *{r} steps, double *{r} samples_out)")
+            f"int *{r} status, long *{r} steps, double *{r} samples_out{flag})")

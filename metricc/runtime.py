@@ -423,7 +423,6 @@ class MetricKernels:
         # Ctrl-C: the C call runs off the main thread, which waits for it and, on
         # KeyboardInterrupt, raises this flag; the integrator reads it once per step
         flag = ffi.new("int *")
-        opt.interrupt = flag
         npar = len(values)
         if npar == 0 or all(v.ndim == 0 for v in given.values()):
             pvec = np.array([float(v[0]) if v.size else 0.0 for v in values] or [0.0])
@@ -437,7 +436,7 @@ class MetricKernels:
         steps = np.empty(N, dtype=np.dtype(f"i{ffi.sizeof('long')}"))
         S = 0 if samples is None else len(samples)
         samp = np.full((N, S, n), np.nan) if S else None
-        fn = getattr(lib, f"{self.name}_integrate")
+        fn = getattr(lib, f"{self.name}_integrate_interruptible")
         chunk = N if progress is None else max(64, -(-N // 100))
         s_ptr = ffi.from_buffer("double[]", samples) if S else ffi.NULL
         for start in range(0, N, max(chunk, 1)):
@@ -450,7 +449,7 @@ class MetricKernels:
                     ffi.from_buffer("double[]", lam[start:stop]),
                     ffi.from_buffer("int[]", codes[start:stop]),
                     ffi.from_buffer("long[]", steps[start:stop]),
-                    ffi.from_buffer("double[]", samp[start:stop]) if S else ffi.NULL)
+                    ffi.from_buffer("double[]", samp[start:stop]) if S else ffi.NULL, flag)
             _interruptible(fn, args, flag)
             if progress is not None:
                 progress(stop, N)
@@ -550,8 +549,8 @@ def _integrator_thread():
 
 
 def _interruptible(fn, args, flag) -> None:
-    """fn(*args), a C integrator call whose options point at ``flag`` (cffi int *), such that
-    Ctrl-C stops it within a step.
+    """fn(*args), a C integrator call that reads ``flag`` (cffi int *, its interrupt flag),
+    such that Ctrl-C stops it within a step.
 
     Python runs signal handlers only on the main thread, between bytecodes; a long C call on
     the main thread would hold a KeyboardInterrupt back until it returns. So the call runs on

@@ -163,8 +163,9 @@ def test_more_than_64_events(walls, backend, events, first):
 # -- Ctrl-C --------------------------------------------------------------------------------
 @pytest.mark.skipif(not have_compiler(), reason="no C compiler")
 def test_interrupt_flag_stops_every_state(shipped):
-    """The standalone entry point: a raised interrupt flag stops every state with status
-    INTERRUPTED at its initial state (here raised before the call)."""
+    """The standalone entry point kerr_integrate_interruptible: a raised interrupt flag stops
+    every state with status INTERRUPTED at its initial state (here raised before the call);
+    kerr_integrate keeps its signature and options."""
     k = shipped["kerr"]["c"]
     ffi, lib = k._c.ffi, k._c.lib
     y0 = np.array([kerr_circular(k)] * 40)
@@ -172,15 +173,14 @@ def test_interrupt_flag_stops_every_state(shipped):
     opt = ffi.new("kerr_integrator_options *")
     opt.rtol, opt.atol, opt.max_steps, opt.method = 1e-10, 1e-12, 100000, 1   # DOP853
     flag = ffi.new("int *", 1)
-    opt.interrupt = flag
     p = np.array(list(k.parameters.values()))
     y_out, lam = np.full((n, 8), np.nan), np.full(n, np.nan)
     status = np.full(n, -7, dtype=np.intc)
     steps = np.full(n, -7, dtype=np.dtype(f"i{ffi.sizeof('long')}"))
-    lib.kerr_integrate(n, ffi.from_buffer("double[]", y0), 1e6, ffi.from_buffer("double[]", p),
-                       0, opt, 0, ffi.NULL, ffi.from_buffer("double[]", y_out),
-                       ffi.from_buffer("double[]", lam), ffi.from_buffer("int[]", status),
-                       ffi.from_buffer("long[]", steps), ffi.NULL)
+    lib.kerr_integrate_interruptible(
+        n, ffi.from_buffer("double[]", y0), 1e6, ffi.from_buffer("double[]", p), 0, opt, 0,
+        ffi.NULL, ffi.from_buffer("double[]", y_out), ffi.from_buffer("double[]", lam),
+        ffi.from_buffer("int[]", status), ffi.from_buffer("long[]", steps), ffi.NULL, flag)
     np.testing.assert_array_equal(status, integrate_module.INTERRUPTED)
     np.testing.assert_array_equal(y_out, y0)
     np.testing.assert_array_equal(lam, 0.0)

@@ -112,8 +112,8 @@ def _riemann_checks(k, x):
 @pytest.mark.slow
 @needs_cc
 def test_dense_8d_curvature_and_jacobians_build_and_agree(tmp_path, monkeypatch):
-    """The full dense 8-D build (about 2.5 minutes of CPU time on the reference machine,
-    README: Performance) compiles, and C agrees with NumPy."""
+    """The full dense 8-D build (about 95 s of CPU on a 2-core machine, 2 to 3 minutes of
+    wall time: benchmarks/bench_dense_build.py) compiles, and C agrees with NumPy."""
     monkeypatch.setenv("METRICC_CACHE_DIR", str(tmp_path / "cache"))
     text = dense_spec(8)
     k = metricc.loads(text, backend="c", kernels=["curvature", "jacobian"])

@@ -94,12 +94,14 @@ def _stages_function(name: str, P: str, tab: dict, n: int, lanes: int = LANES) -
     init += (["        acc[l] = 0.0;"] if tag == "dp5"
              else ["        err5[l] = 0.0;", "        err3[l] = 0.0;"])
     init += ["        bad[l] = 0.0;", "    }"]
-    # a comparison rather than fmax: fmax is a libm call when NaN semantics must be kept,
-    # and a NaN here makes the error non-finite (the step is rejected) either way;
+    # sk = 1 where atol + rtol * max(...) is 0 (integrate._scale: 0 / 0 would reject a finite
+    # step as non-finite); a comparison rather than fmax: fmax is a libm call when NaN
+    # semantics must be kept, and a NaN y_new is caught by bad[l] either way;
     # bad[l] stays 0 while every component of lane l's y_new is finite (an - an is NaN for
     # an infinite or NaN component): the finiteness test, vectorised with the error norm
     norm = ["            const double ay = fabs(y[o]), an = fabs(ynew[o]);",
-            "            const double sk = atol + rtol * (ay > an ? ay : an);",
+            "            const double sk0 = atol + rtol * (ay > an ? ay : an);",
+            "            const double sk = sk0 > 0.0 ? sk0 : 1.0;",
             "            bad[l] += an - an;"]
     if tag == "dp5":
         norm += [f"            const double e = {_combo(tab['e'], ref, 'h[l]')} / sk;",

@@ -377,9 +377,16 @@ def _in_step(samples, lam_from, lam_to, direction) -> np.ndarray:
     return (s < lam_from[:, None]) & (s >= lam_to[:, None])
 
 
+def _scale(sk: np.ndarray) -> np.ndarray:
+    """Error scales atol + rtol * |y|, with 1 where that is 0 (atol = 0 and a component that
+    is exactly 0): its error then counts as absolute, where 0 / 0 would make a finite state
+    "not_finite". The C integrator does the same (a comparison and a select)."""
+    return np.where(sk > 0, sk, 1.0)
+
+
 def _initial_step(rhs, y, f, params, direction, hmax, order, rtol, atol):
     """Hairer's starting step size (HNW 1993, sec. II.4), per state."""
-    sk = atol + rtol * np.abs(y)
+    sk = _scale(atol + rtol * np.abs(y))
     n = y.shape[1]
     dnf = np.sum((f / sk) ** 2, axis=1) / n
     dny = np.sum((y / sk) ** 2, axis=1) / n
@@ -406,7 +413,7 @@ def _step(tab: _Tableau, rhs, y, f, h, params, rtol, atol):
         K[s] = rhs(y + hcol * _combine(tab.a[s], K[:s]), params)
     y_new = y + hcol * _combine(tab.b, K[:tab.stages - 1])
     K[tab.stages - 1] = rhs(y_new, params)
-    sk = atol + rtol * np.maximum(np.abs(y), np.abs(y_new))
+    sk = _scale(atol + rtol * np.maximum(np.abs(y), np.abs(y_new)))
     if tab.name == "dp5":
         e = hcol * _combine(tab.e, K) / sk
         err = np.sqrt(np.sum(e * e, axis=1) / n)

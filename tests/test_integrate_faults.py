@@ -276,3 +276,18 @@ def test_new_statuses_are_reserved_event_names(status):
             f'[events]\n{status} = "x - 1"\n')
     with pytest.raises(metricc.SpecError, match=status):
         metricc.loads(text, backend="numpy")
+
+
+FLAT2 = ('name = "flat2"\ncoordinates = ["t", "x"]\nsignature = "-+"\n'
+         'line_element = "-dt^2 + dx^2"\n')
+
+
+def test_pure_relative_tolerance_with_a_zero_component(backend):
+    """atol = 0 and x, u^x exactly 0 all along (a particle at rest in flat space, common
+    practice): the error scale of those components is 0; the state is finite and must end
+    "done" at x = 0, t = lambda, not "not_finite" from 0 / 0 in the error norm."""
+    k = metricc.loads(FLAT2, backend=backend)
+    res = k.integrate(np.array([[0.0, 0.0, 1.0, 0.0], [0.0, 0.0, 1.0, 0.5]]), 10.0, atol=0.0)
+    assert list(res.status) == ["done", "done"]
+    np.testing.assert_allclose(res.y[:, 0], 10.0, rtol=1e-13)
+    np.testing.assert_allclose(res.y[:, 1], [0.0, 5.0], rtol=1e-13, atol=0)

@@ -387,6 +387,16 @@ def _to_sympy(spec: Spec, e: Expression, env: dict[str, sp.Expr]) -> sp.Expr:
                            node)
         return value
 
+    # (size, depth) of each value built so far, as a tree: measured for the helpers, bounded
+    # from the arguments for the rest, so that no sympy operation (whose assumption queries
+    # walk the whole tree) ever starts on an operand far beyond the limits
+    sizes: dict[int, tuple[sp.Basic, int, int]] = {}
+
+    def measure(x: sp.Basic) -> tuple[int, int]:
+        if id(x) not in sizes:
+            sizes[id(x)] = (x, *tree_measure(x, cap=10 * MAX_TREE_SIZE))
+        return sizes[id(x)][1:]
+
     def leaf(node: ex.Node) -> sp.Expr:
         if node.kind == "num":
             f: Fraction = node.value
@@ -395,7 +405,26 @@ def _to_sympy(spec: Spec, e: Expression, env: dict[str, sp.Expr]) -> sp.Expr:
             return sp.pi
         return env[node.value]
 
+    def bound(args: list) -> tuple[int, int]:
+        return (1 + sum(measure(a)[0] for a in args), 1 + max(measure(a)[1] for a in args))
+
     def combine(node: ex.Node, args: list) -> sp.Expr:
+        size, depth = bound(args)
+        if size > 2 * MAX_TREE_SIZE or depth > 2 * MAX_TREE_DEPTH:
+            # the bounds only grow; sympy flattens sums and collects powers, so measure
+            # the operands themselves before blaming the expression
+            for a in args:
+                sizes[id(a)] = (a, *tree_measure(a, cap=10 * MAX_TREE_SIZE))
+            size, depth = bound(args)
+        if size > 2 * MAX_TREE_SIZE or depth > 2 * MAX_TREE_DEPTH:
+            raise fail(f"expression too large: over {2 * MAX_TREE_SIZE} nodes or "
+                       f"{2 * MAX_TREE_DEPTH} levels here with every helper written out (the "
+                       f"limits are {MAX_TREE_SIZE} nodes and {MAX_TREE_DEPTH} levels)", node)
+        out = _operation(node, args)
+        sizes[id(out)] = (out, size, depth) if out.args else (out, 1, 1)
+        return out
+
+    def _operation(node: ex.Node, args: list) -> sp.Expr:
         k = node.kind
         if k == "call":
             # an exact integer beyond 2^53 inside a function has no double of its own (and

@@ -302,3 +302,16 @@ def test_toml_error_at_end_of_document_has_a_column():
     err = info.value
     assert "invalid TOML" in err.reason
     assert (err.line, err.column) == (4, len("never closed") + 1)
+
+
+def test_powers_of_powers_are_bounded():
+    """Found by the fuzzer: ((phi^1.5)^1.5)... 33 deep hung in sympy's Pow (each level about
+    3.4 times slower than the one before). Refused at the first power past the limit."""
+    x = "phi"
+    for _ in range(33):
+        x = f"({x})^1.5"
+    text = ('name = "t"\ncoordinates = ["r", "u", "phi"]\n[metric]\n'
+            f'r.r = "({x})^2"\nu.u = "1"\nphi.phi = "1"\n')
+    err = refused(text, "metric", "r.r", "powers of powers nested more than")
+    assert err.line == 4
+    assert x.index("^1.5)^1.5)") < err.column < len(x) + 10

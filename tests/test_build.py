@@ -19,16 +19,7 @@ from tests.conftest import ROOT, SPECS, needs_cc
 
 def _spec_text(tag: str) -> str:
     """A small valid spec whose content (and so cache key) is unique to ``tag``."""
-    return textwrap.dedent(f"""
-        name = "probe_{tag}"
-        summary = "test surface {tag}"
-        coordinates = ["u", "v"]
-        [parameters]
-        k = 0.5
-        [metric]
-        u.u = "1 + k*v^2"
-        v.v = "1 + u^2"
-        """)
+    return _small_spec(f"probe_{tag}", summary=f"test surface {tag}")
 
 
 def _run(code: str, env_extra: dict, timeout=300) -> subprocess.CompletedProcess:
@@ -132,9 +123,11 @@ def test_atomic_write_replaces_whole_file(tmp_path):
     assert [p.name for p in tmp_path.iterdir()] == ["f.txt"]
 
 
-def _small_spec(name: str, extra: str = "") -> str:
+def _small_spec(name: str, extra: str = "", summary: str = "") -> str:
+    """A small valid 2-D spec named ``name``; ``extra`` (tables) is appended at the end."""
     return textwrap.dedent(f"""
         name = "{name}"
+        summary = "{summary}"
         coordinates = ["u", "v"]
         [parameters]
         k = 0.5

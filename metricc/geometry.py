@@ -886,6 +886,7 @@ class _Sampler:
         self.defaults = np.array([v for _, v in spec.parameters], dtype=float)
         self.anchors = anchor_scales(self.defaults)
         self.region = region_spans(spec)
+        self._drawn: dict[tuple[int, int], np.ndarray] = {}
         self.entries = [[sp.lambdify([coords, params], metric[i, j], modules="numpy")
                          for j in range(self.dim)] for i in range(self.dim)]
         self.domain = [sp.lambdify([coords, params], d, modules="numpy") for _, d in domain]
@@ -914,9 +915,12 @@ class _Sampler:
         return self.inside(points) & np.all(np.isfinite(self.metric(points)), axis=(1, 2))
 
     def sample(self, n: int, seed: int) -> np.ndarray:
-        """Up to n accepted points (m, dim), moderate scales first (see sampling.py)."""
-        return sample_inside(self.accept, self.dim, n, seed=seed, anchors=self.anchors,
-                             region=self.region)
+        """Up to n accepted points (m, dim), moderate scales first (see sampling.py); drawn
+        once per (n, seed): the metric and the event checks share their points."""
+        if (n, seed) not in self._drawn:
+            self._drawn[(n, seed)] = sample_inside(self.accept, self.dim, n, seed=seed,
+                                                   anchors=self.anchors, region=self.region)
+        return self._drawn[(n, seed)]
 
 
 def region_spans(spec: Spec) -> list:
@@ -1013,14 +1017,13 @@ def _no_points_error(spec: Spec, sampler: _Sampler):
         for j in range(i, sampler.dim):
             if np.any(np.isfinite(g[:, i, j])):
                 continue
-            given = [e for (a, b), e in spec.metric if (a, b) == (i, j)]
-            e = given[0] if given else spec.line_element
-            what = "" if given else f" (the coefficient of d{names[i]}*d{names[j]})"
-            if e is not None:
-                return spec.expression_error(
-                    e, f"evaluates to infinity or NaN at every sample point{what}"
-                       f"{at_defaults} (a constant beyond double range, or a division by a "
-                       "zero?)")
+            # (an absent [metric] pair is 0, always finite: the entry here has a source)
+            what = "" if spec.line_element is None else \
+                f" (the coefficient of d{names[i]}*d{names[j]})"
+            return spec.expression_error(
+                _source_of(spec, i, j), f"evaluates to infinity or NaN at every sample "
+                f"point{what}{at_defaults} (a constant beyond double range, or a division by "
+                "a zero?)")
     inside = sampler.inside(cand)
     for (name, _), f in zip(spec.domain, sampler.domain):
         val = _evaluate(f, cand.T, sampler.defaults, len(cand))

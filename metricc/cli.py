@@ -240,9 +240,10 @@ def _summary(r, out: Path, written: list[str]) -> None:
     print(f"  dimension {ks.dim}, parameters: {', '.join(p for p, _ in ks.parameters) or 'none'};"
           f" ignorable: {', '.join(ks.ignorable) or 'none'}")
     print(f"  inverse metric: {ks.inverse_strategy} ({blocks})")
-    print(f"  {'kernel':<16} {'operations (unoptimised -> emitted)'}")
+    width = max([16] + [len(k.name) for k in ks.kernels])   # invariants_hamilton is 19
+    print(f"  {'kernel':<{width}} {'operations (unoptimised -> emitted)'}")
     for k in ks.kernels:
-        print(f"  {k.name:<16} {k.ops_before:>7} -> {k.ops_after}")
+        print(f"  {k.name:<{width}} {k.ops_before:>7} -> {k.ops_after}")
     files = sorted(r.sources.files)
     unchanged = [f for f in files if f not in written]
     print(f"  wrote: {', '.join(written) or 'nothing'}"

@@ -23,7 +23,8 @@ import numpy as np
 import sympy as sp
 
 from . import expr as ex
-from .sampling import SIGNATURE_RTOL, SINGULAR_RTOL, sample_inside, scaled_spectrum
+from .sampling import SIGNATURE_RTOL, SINGULAR_RTOL, evaluable, sample_inside, \
+    scaled_spectrum
 from .spec import Expression, Spec
 
 MAX_EXPONENT = 64          # |n| for a numeric exponent
@@ -911,8 +912,9 @@ class _Sampler:
         return ok
 
     def accept(self, points) -> np.ndarray:
-        """Inside every [domain] expression (finite, > 0) with a finite metric."""
-        return self.inside(points) & np.all(np.isfinite(self.metric(points)), axis=(1, 2))
+        """Inside every [domain] expression (finite, > 0) with a metric that evaluates there
+        (finite, no row underflowed to zero: sampling.evaluable)."""
+        return self.inside(points) & evaluable(self.metric(points))
 
     def sample(self, n: int, seed: int) -> np.ndarray:
         """Up to n accepted points (m, dim), moderate scales first (see sampling.py); drawn

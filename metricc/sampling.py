@@ -92,6 +92,28 @@ def sample_inside(accept: Callable[[np.ndarray], np.ndarray], dim: int, n: int,
     return pts[order[:n]]
 
 
+UNDERFLOW_NEAR = 1e-100     # a row whose entries come this near to 0 somewhere can underflow
+
+
+def evaluable(g: np.ndarray) -> np.ndarray:
+    """(m,) bool for a batch of metrics g (m, n, n): finite, and no row that underflowed.
+
+    A row that is exactly zero at a point, while the same row is non-zero but below
+    UNDERFLOW_NEAR in size at another point of the batch, is an entry that underflowed far
+    out (exp(2 H t) with H = 100 is exactly 0 below t = -3.8): it would make a valid metric
+    look singular, so the point is skipped, not blamed. A row that is zero everywhere (a
+    missing entry) or zero on an open set with ordinary sizes elsewhere (r + abs(r)) is the
+    metric's own, and is still found singular."""
+    finite = np.all(np.isfinite(g), axis=(1, 2))
+    mag = np.where(finite[:, None, None], np.abs(g), np.inf)
+    zero_row = np.all(mag == 0, axis=2)                                 # (m, n)
+    with np.errstate(invalid="ignore"):
+        row_size = np.max(np.where(np.isfinite(mag), mag, 0.0), axis=2)   # (m, n)
+    tiny = (row_size > 0) & (row_size < UNDERFLOW_NEAR)
+    prone = np.any(tiny & finite[:, None], axis=0)                       # (n,)
+    return finite & ~np.any(zero_row & prone[None, :], axis=1)
+
+
 def neighbours(rng: np.random.Generator, point: np.ndarray, k: int,
                region: Sequence[tuple[float, float] | None] | None = None) -> np.ndarray:
     """(k, dim) points near ``point``: each coordinate moved by up to 1e-3 of its own size

@@ -24,7 +24,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .sampling import SIGNATURE_RTOL, SINGULAR_RTOL, anchor_scales, log_scales, \
+from .sampling import SIGNATURE_RTOL, SINGULAR_RTOL, anchor_scales, evaluable, log_scales, \
     sample_inside, scaled_spectrum
 
 EPS = float(np.finfo(float).eps)
@@ -64,8 +64,7 @@ def sample_states(k, n: int, seed: int = 1) -> np.ndarray:
     def accept(points):
         with np.errstate(all="ignore"):
             ok = k.inside(points) if k.domain_names else np.ones(len(points), dtype=bool)
-            g = k.metric(points)
-            return ok & np.all(np.isfinite(g), axis=(1, 2))
+            return ok & evaluable(k.metric(points))
 
     x = sample_inside(accept, k.dim, n, seed=seed, anchors=anchor_scales(
         list(k.parameters.values())), region=region_of(k))

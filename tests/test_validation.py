@@ -390,3 +390,18 @@ def test_line_element_with_large_terms_that_cancel_is_accepted():
     assert _numerically_zero(sp.Add(sp.Float(1e8) * sp.sin(r) ** 2, sp.Float(1e8) * sp.cos(r) ** 2,
                                     sp.Float(-1e8), evaluate=False))
     assert not _numerically_zero(sp.Float(1e-13) * r)
+
+
+@pytest.mark.parametrize("hubble", [30.0, 100.0])
+def test_scale_factor_that_underflows_far_out_builds_and_verifies(hubble):
+    """de Sitter in flat slicing, ds^2 = -dt^2 + exp(2 H t) dx^2 (closed form; e.g. Carroll
+    2004, Spacetime and Geometry, sec. 8.2), with a steep H: exp(2 H t) is exactly 0 in double
+    precision below t = -708/(2 H), which made a valid metric look singular (H = 100 was refused
+    at build, H = 30 failed verify). Such points are skipped, not blamed."""
+    text = ('name = "steep_de_sitter"\ncoordinates = ["t", "x", "y", "z"]\nsignature = "-+++"\n'
+            f'[parameters]\nH = {hubble}\n[metric]\nt.t = "-1"\nx.x = "exp(2*H*t)"\n'
+            'y.y = "exp(2*H*t)"\nz.z = "exp(2*H*t)"\n')
+    k = metricc.loads(text, backend="numpy")
+    for seed in (1, 2, 3):
+        failed = [c.name for c in run_checks(k, n=24, seed=seed) if not c.ok]
+        assert not failed, f"seed {seed}: {failed}"

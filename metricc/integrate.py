@@ -93,6 +93,12 @@ class IntegrationResult:
     dict name -> (N,) |I_end - I_start| for the spec's [invariants]. status_code: (N,) the
     integer statuses (0 done, 1 domain, 2 max_steps, 3 step_underflow, 4 not_finite,
     5 bad_input, 16 + k event k).
+
+    Carried quantities (None unless asked for; see MetricKernels.integrate): transport
+    (N, m, dim) and transport_samples (N, S, m, dim); variations (N, m, 2*dim), or
+    (N, 2*dim, 2*dim) = d y_end / d y0 for variations="all", and variations_samples
+    (N, S, m, 2*dim) (resp. (N, S, 2*dim, 2*dim)); param_variations: dict name -> (N, 2*dim)
+    d y_end / d param.
     """
     y: np.ndarray
     lam: np.ndarray
@@ -102,6 +108,11 @@ class IntegrationResult:
     drift: np.ndarray
     status_code: np.ndarray
     invariant_drift: dict = field(default_factory=dict)
+    transport: np.ndarray | None = None
+    transport_samples: np.ndarray | None = None
+    variations: np.ndarray | None = None
+    variations_samples: np.ndarray | None = None
+    param_variations: dict | None = None
 
 
 def status_names(codes: np.ndarray, event_names) -> np.ndarray:
@@ -170,17 +181,31 @@ def _combine(coeffs: np.ndarray, K: np.ndarray) -> np.ndarray:
 def integrate_numpy(rhs: Callable, stop: Callable | None, y0: np.ndarray, lam_end: float,
                     params: tuple, *, rtol: float, atol: float, max_steps: int, method: str,
                     samples: np.ndarray | None, stop_codes: np.ndarray,
-                    progress: Callable | None = None):
+                    progress: Callable | None = None, n_base: int | None = None,
+                    n_control: int | None = None):
     """Integrate every row of y0 (N, n) from lambda = 0 to lam_end.
 
     rhs(y (m, n), params_subset) -> (m, n). stop(x (m, dim), params_subset) -> (m, J) values
     whose sign change to <= 0 stops a state with the matching entry of stop_codes (J,).
     params: tuple of (N,) arrays. Returns (y, lam, status codes, steps, samples or None).
+
+    Carried quantities: a row may be an augmented state [base state (n_base = 2*dim),
+    carried components (n - n_base)]; rhs then gets and returns the augmented rows, the stop
+    functions read the first dim components, and samples, dense output and the placement at
+    a stop include the carried part. The starting step comes from the base components only;
+    the error norm (and the finiteness test of a step) covers the first n_control components
+    (default n: all; n_base: the steps are those of the base state alone, bit for bit).
+    n_base defaults to n (nothing carried).
     """
     tab = _Tableau(method)
     y = np.array(y0, dtype=np.float64, copy=True)
     N, n = y.shape
-    dim = n // 2
+    n_base = n if n_base is None else int(n_base)
+    n_control = n if n_control is None else int(n_control)
+    if not (0 < n_base <= n and n_base % 2 == 0 and n_base <= n_control <= n):
+        raise ValueError(f"n_base={n_base} and n_control={n_control} do not fit states of "
+                         f"size {n} (need 0 < n_base <= n_control <= {n}, n_base even)")
+    dim = n_base // 2
     direction = 1.0 if lam_end >= 0 else -1.0
     lam = np.zeros(N)
     status = np.full(N, RUNNING, dtype=np.int32)
@@ -220,12 +245,12 @@ def integrate_numpy(rhs: Callable, stop: Callable | None, y0: np.ndarray, lam_en
         idx = np.flatnonzero(status == RUNNING)
         if idx.size:
             f[idx] = rhs(y[idx], sub(idx))
-            badf = ~np.all(np.isfinite(f[idx]), axis=1)
+            badf = ~np.all(np.isfinite(f[idx, :n_control]), axis=1)
             status[idx[badf]] = BAD_INPUT
             idx = idx[~badf]
         if idx.size:
             h[idx] = _initial_step(rhs, y[idx], f[idx], sub(idx), direction, abs(lam_end),
-                                   tab.order, rtol, atol)
+                                   tab.order, rtol, atol, n_base)
         facold = np.full(N, 1e-4)
         h_prev, err_prev = np.zeros(N), np.full(N, 1e-2)   # the last accepted step's
         last_rejected = np.zeros(N, dtype=bool)
@@ -257,8 +282,8 @@ def integrate_numpy(rhs: Callable, stop: Callable | None, y0: np.ndarray, lam_en
             hi = np.where(direction * (hi - remaining) > 0, remaining, hi)
             pi = sub(idx)
             yi, fi = y[idx], f[idx]
-            K, y_new, err = _step(tab, rhs, yi, fi, hi, pi, rtol, atol)
-            finite = np.isfinite(err) & np.all(np.isfinite(y_new), axis=1)
+            K, y_new, err = _step(tab, rhs, yi, fi, hi, pi, rtol, atol, n_control)
+            finite = np.isfinite(err) & np.all(np.isfinite(_first(y_new, n_control)), axis=1)
             accept = finite & (err <= 1.0)
             # step-size proposal (Hairer's controller)
             errc = np.where(finite, err, 1.0)
@@ -384,16 +409,27 @@ def _scale(sk: np.ndarray) -> np.ndarray:
     return np.where(sk > 0, sk, 1.0)
 
 
-def _initial_step(rhs, y, f, params, direction, hmax, order, rtol, atol):
-    """Hairer's starting step size (HNW 1993, sec. II.4), per state."""
+def _first(a: np.ndarray, k: int) -> np.ndarray:
+    """The first k columns of a (m, n) as a contiguous array (a itself when k = n): the sums
+    over them then run exactly as over an array of width k, so a base state carried with
+    extra components gets the same bits as alone."""
+    return a if k == a.shape[1] else np.ascontiguousarray(a[:, :k])
+
+
+def _initial_step(rhs, y, f, params, direction, hmax, order, rtol, atol, n_base=None):
+    """Hairer's starting step size (HNW 1993, sec. II.4), per state, from the first n_base
+    components (the base state; carried components take no part); rhs gets the full rows."""
+    n = y.shape[1] if n_base is None else n_base
+    y_full, f_full = y, f
+    y, f = _first(y, n), _first(f, n)
     sk = _scale(atol + rtol * np.abs(y))
-    n = y.shape[1]
     dnf = np.sum((f / sk) ** 2, axis=1) / n
     dny = np.sum((y / sk) ** 2, axis=1) / n
     h = np.where((dnf <= 1e-10) | (dny <= 1e-10), 1e-6, np.sqrt(dny / np.maximum(dnf, 1e-300)) * 0.01)
     h = np.minimum(h, hmax) * direction
-    y1 = y + h[:, None] * f
-    f1 = rhs(y1, params)
+    # the trial Euler step moves the whole row (rhs takes full rows); only its base part counts
+    y1 = y_full + h[:, None] * f_full
+    f1 = _first(rhs(y1, params), n)
     der2 = np.sqrt(np.sum(((f1 - f) / sk) ** 2, axis=1) / n) / np.abs(h)
     der12 = np.maximum(np.abs(der2), np.sqrt(dnf))
     h1 = np.where(der12 <= 1e-15, np.maximum(1e-6, np.abs(h) * 1e-3),
@@ -403,9 +439,11 @@ def _initial_step(rhs, y, f, params, direction, hmax, order, rtol, atol):
     return direction * h
 
 
-def _step(tab: _Tableau, rhs, y, f, h, params, rtol, atol):
-    """One attempted step for every row: (stages K (s, m, n), y_new, error norm (m,))."""
+def _step(tab: _Tableau, rhs, y, f, h, params, rtol, atol, n_control=None):
+    """One attempted step for every row: (stages K (s, m, n), y_new, error norm (m,)). The
+    norm covers the first n_control components (default all)."""
     m, n = y.shape
+    nc = n if n_control is None else n_control
     K = np.empty((tab.stages, m, n))
     K[0] = f
     hcol = h[:, None]
@@ -415,16 +453,16 @@ def _step(tab: _Tableau, rhs, y, f, h, params, rtol, atol):
     K[tab.stages - 1] = rhs(y_new, params)
     sk = _scale(atol + rtol * np.maximum(np.abs(y), np.abs(y_new)))
     if tab.name == "dp5":
-        e = hcol * _combine(tab.e, K) / sk
-        err = np.sqrt(np.sum(e * e, axis=1) / n)
+        e = _first(hcol * _combine(tab.e, K) / sk, nc)
+        err = np.sqrt(np.sum(e * e, axis=1) / nc)
     else:
-        e5 = _combine(tab.e5, K) / sk
-        e3 = _combine(tab.e3, K) / sk
+        e5 = _first(_combine(tab.e5, K) / sk, nc)
+        e3 = _first(_combine(tab.e3, K) / sk, nc)
         err5 = np.sum(e5 * e5, axis=1)
         err3 = np.sum(e3 * e3, axis=1)
         deno = err5 + 0.01 * err3
         deno = np.where(deno > 0, deno, 1.0)
-        err = np.abs(h) * err5 / np.sqrt(deno * n)
+        err = np.abs(h) * err5 / np.sqrt(deno * nc)
     return K, y_new, err
 
 

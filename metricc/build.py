@@ -289,9 +289,7 @@ def manifest_of(result) -> dict:
         "spec_sha256": ks.spec_sha256,
         "coordinates": list(ks.coordinates),
         "parameters": [[p, v] for p, v in ks.parameters],
-        "kernels": {k.name: {"input": k.input_name, "input_size": len(k.input_symbols),
-                             "output_shape": list(k.output_shape), "ops_before": k.ops_before,
-                             "ops_after": k.ops_after} for k in ks.kernels},
+        "kernels": {k.name: _kernel_entry(k) for k in ks.kernels},
         "ignorable": list(ks.ignorable),
         "domain": list(ks.domain),
         "events": list(ks.events),
@@ -538,6 +536,18 @@ def ensure_binary(entry: CacheEntry) -> CacheEntry:
 # user integrates with (core) keep -O3.
 GROUP_OPT = ((20000, ["-O0"]), (4000, ["-O1"]), (0, ["-O2"]))
 COMPILE_TIMEOUT = 600
+
+
+def _kernel_entry(k) -> dict:
+    """A kernel's manifest entry: its input, output shape and operation counts; a
+    directional kernel (metricc.tangent) also its direction's size and output shape."""
+    entry = {"input": k.input_name, "input_size": len(k.input_symbols),
+             "output_shape": list(k.output_shape), "ops_before": k.ops_before,
+             "ops_after": k.ops_after}
+    if k.directional:
+        entry["direction_size"] = len(k.direction_symbols)
+        entry["direction_output_shape"] = list(k.direction_shape)
+    return entry
 
 
 def kernel_units(manifest: dict) -> list[tuple[str, list[str]]]:

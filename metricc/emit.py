@@ -128,6 +128,16 @@ def c_prototypes(ks: KernelSet, restrict: str) -> list[tuple[str, str, str]]:
     out = []
     r = restrict
     for k in ks.kernels:
+        if k.directional:
+            d = k.direction_name
+            single = (f"void {ks.name}_{k.name}(const double *{r} {k.input_name}, size_t m, "
+                      f"const double *{r} {d}, const double *{r} params, double *{r} f, "
+                      f"double *{r} out)")
+            batch = (f"void {ks.name}_{k.name}_batch(size_t n, const double *{r} "
+                     f"{k.input_name}, size_t m, const double *{r} {d}, const double *{r} "
+                     f"params, size_t params_stride, double *{r} f, double *{r} out)")
+            out.append((k.name, single, batch))
+            continue
         single = (f"void {ks.name}_{k.name}(const double *{r} {k.input_name}, "
                   f"const double *{r} params, double *{r} out)")
         batch = (f"void {ks.name}_{k.name}_batch(size_t n, const double *{r} {k.input_name}, "
@@ -211,6 +221,9 @@ def c_header(ks: KernelSet, env=None) -> str:
     for name, single, batch in c_prototypes(ks, f"{P}_RESTRICT"):
         k = kernels[name]
         n_in = len(k.input_symbols)
+        if k.directional:
+            decls += _directional_docs(ks, k, single, batch)
+            continue
         doc = (f"/* {name}: {safe_comment(k.doc)}\n"
                f" *   {k.input_name}[{n_in}] = {safe_comment(_input_layout(ks, k))}\n"
                f" *   {safe_comment(_output_layout(ks, k))} */")
@@ -338,7 +351,8 @@ def _c_printer(ks: KernelSet) -> Printer:
 
 
 def _c_statements(ks: KernelSet, k: Kernel, load, load_param, store, steps=None, outputs=None,
-                  unused_stride: bool = False, mark_unused: bool = True) -> list[str]:
+                  unused_stride: bool = False, mark_unused: bool = True,
+                  extra_used=frozenset()) -> list[str]:
     """Print a straight-line program: declarations of the inputs and parameters it reads
     (``load(i)``, ``load_param(j)`` give the C lvalue of input i and parameter j), its
     steps, and ``store(i) = output i``. steps/outputs default to the kernel's own; outputs
@@ -346,7 +360,7 @@ def _c_statements(ks: KernelSet, k: Kernel, load, load_param, store, steps=None,
     pr = _c_printer(ks)
     steps = k.steps if steps is None else steps
     outputs = list(enumerate(k.outputs)) if outputs is None else outputs
-    used = symbols_read(steps, [e for _, e in outputs])
+    used = symbols_read(steps, [e for _, e in outputs]) | set(extra_used)
     lines = []
     loaded = False
     for i, s in enumerate(k.input_symbols):
@@ -401,7 +415,12 @@ HEAVY_OPS = 4000
 # Optional kernel groups and their kernels; each group can be compiled as a translation unit
 # of its own (NAME_SKIP_<GROUP> and NAME_SKIP_CORE in the C source).
 GROUP_KERNELS = {"curvature": ("riemann", "ricci", "ricci_scalar", "kretschmann"),
-                 "jacobian": ("geodesic_jacobian", "hamilton_jacobian")}
+                 "jacobian": ("geodesic_jacobian", "hamilton_jacobian"),
+                 # not optional (every build has them), but a unit of their own, compiled
+                 # in parallel with the core kernels
+                 "carry": ("geodesic_tangent", "hamilton_tangent", "geodesic_transport",
+                           "hamilton_transport", "geodesic_param_derivative",
+                           "hamilton_param_derivative", "stops_gradient")}
 
 
 # A kernel of an optional group above this many operations is a translation unit of its own
@@ -675,6 +694,10 @@ def vector_math_block(ks: KernelSet) -> str:
 
 def soa_prototype(ks: KernelSet, k: Kernel, restrict: str) -> str:
     r = restrict
+    if k.directional:
+        return (f"void {ks.name}_{k.name}_soa(size_t n, const double *{r} {k.input_name}, "
+                f"size_t m, const double *{r} {k.direction_name}, const double *{r} params, "
+                f"size_t params_stride, double *{r} f, double *{r} out)")
     return (f"void {ks.name}_{k.name}_soa(size_t n, const double *{r} {k.input_name}, "
             f"const double *{r} params, size_t params_stride, double *{r} out)")
 
@@ -695,8 +718,13 @@ def c_source(ks: KernelSet, env=None, preamble: str = "") -> str:
     for name, single, batch in c_prototypes(ks, f"{P}_RESTRICT"):
         k = kernels[name]
         functions = sections[section_of[name]]
-        functions.append({"prototype": single, "body": _c_body(ks, k)})
         soa = soa_prototype(ks, k, f"{P}_RESTRICT")
+        if k.directional:
+            functions += [{"prototype": single, "body": _c_directional_body(ks, k)},
+                          {"prototype": batch, "body": _c_directional_batch(ks, k)},
+                          {"prototype": soa, "body": _c_directional_soa(ks, k)}]
+            continue
+        functions.append({"prototype": single, "body": _c_body(ks, k)})
         if name in TILED_KERNELS:
             functions.append({"prototype": tile_prototype(ks, k), "body": _tile_body(ks, k)})
             functions.append({"prototype": batch, "body": _tiled_entry_body(ks, k, True)})
@@ -755,8 +783,144 @@ def _c_double(v: float) -> str:
     return text if ("e" in text or "." in text) else text + ".0"
 
 
+# -- directional kernels (metricc.tangent) -------------------------------------------------------
+def _directional_sizes(k: Kernel) -> tuple[int, int, int]:
+    """(input size, one direction's size, one direction's output size)."""
+    n_out = 1
+    for s in k.direction_shape:
+        n_out *= s
+    return len(k.input_symbols), len(k.direction_symbols), n_out
+
+
+def _directional_docs(ks: KernelSet, k: Kernel, single: str, batch: str) -> list[dict]:
+    n_in, n_dir, n_out = _directional_sizes(k)
+    P = _c_prefix(ks)
+    d, y = k.direction_name, k.input_name
+    return [
+        {"doc": f"/* {k.name}: {safe_comment(k.doc)}\n"
+                f" *   {y}[{n_in}] = {safe_comment(_input_layout(ks, k))}; {d}[m][{n_dir}]; "
+                f"out[m][{n_out}]\n"
+                f" *   f: NULL, or f[{len(k.outputs)}] receives the right-hand side at {y} "
+                "(bit-identical to the RHS kernel's) */", "prototype": single},
+        {"doc": f"/* {k.name} over n states: {y}[n][{n_in}], {d}[n][m][{n_dir}], f NULL or "
+                f"f[n][{len(k.outputs)}], out[n][m][{n_out}] */", "prototype": batch},
+        {"doc": f"/* {k.name} over n states, structure of arrays: {y}[{n_in}][n], "
+                f"{d}[m][{n_dir}][n], f NULL or f[{len(k.outputs)}][n], out[m][{n_out}][n]; "
+                f"tiles of {P}_TILE states, the directions' arithmetic vectorised */",
+         "prototype": soa_prototype(ks, k, f"{P}_RESTRICT")},
+    ]
+
+
+def _direction_part(ks: KernelSet, k: Kernel, load_dir, store) -> list[str]:
+    """Statements of one direction: its components (load_dir(i)), the direction steps, and
+    store(i) = output i."""
+    pr = _c_printer(ks)
+    used = symbols_read(k.direction_steps, k.direction_outputs)
+    lines = [f"const double {s.name} = {load_dir(i)};"
+             for i, s in enumerate(k.direction_symbols) if s in used]
+    lines += [f"const double {st.target.name} = {pr(st.expr)};" for st in k.direction_steps]
+    lines += [f"{store(i)} = {pr(e)};" for i, e in enumerate(k.direction_outputs)]
+    return lines
+
+
+def _shared_for_directions(k: Kernel) -> list:
+    """The values the per-direction statements read from the shared part (sorted by name)."""
+    own = set(k.direction_symbols) | {st.target for st in k.direction_steps}
+    read = symbols_read(k.direction_steps, k.direction_outputs) - own
+    return sorted(read, key=lambda s: s.name)
+
+
+def _c_directional_body(ks: KernelSet, k: Kernel) -> list[str]:
+    """One state: the shared statements once, f if asked for, then a loop over the m
+    directions."""
+    n_in, n_dir, n_out = _directional_sizes(k)
+    arr, d = k.input_name, k.direction_name
+    lines = ["size_t kd;"]
+    lines += _c_statements(ks, k, lambda i: f"{arr}[{i}]", lambda j: f"params[{j}]",
+                           lambda i: f"f[{i}]", outputs=[],
+                           extra_used=set(_shared_for_directions(k)) | k.used_symbols())
+    lines += ["if (f) {"] + [f"    f[{i}] = {_c_printer(ks)(e)};"
+                             for i, e in enumerate(k.outputs)] + ["}"]
+    lines += ["for (kd = 0; kd < m; ++kd) {"]
+    lines += ["    " + x for x in _direction_part(
+        ks, k, lambda i: f"{d}[kd * {n_dir} + {i}]", lambda i: f"out[kd * {n_out} + {i}]")]
+    return lines + ["}"]
+
+
+def _c_directional_batch(ks: KernelSet, k: Kernel) -> list[str]:
+    n_in, n_dir, n_out = _directional_sizes(k)
+    n_f = len(k.outputs)
+    pexpr = "params + i * params_stride" if ks.parameters else "params"
+    return (["size_t i;"] + ([] if ks.parameters else ["(void)params_stride;"])
+            + ["for (i = 0; i < n; ++i)",
+               f"    {ks.name}_{k.name}({k.input_name} + i * {n_in}, m, {k.direction_name} + "
+               f"i * m * {n_dir}, {pexpr}, f ? f + i * {n_f} : f, out + i * m * {n_out});"])
+
+
+def _c_directional_soa(ks: KernelSet, k: Kernel) -> list[str]:
+    """Structure of arrays in tiles of P_TILE states: a loop over the tile runs the shared
+    statements (library calls and all) and keeps the values the directions read in a
+    buffer; then, per direction, a loop over the tile runs the direction's statements, plain
+    arithmetic that the compiler vectorises."""
+    P = _c_prefix(ks)
+    n_in, n_dir, n_out = _directional_sizes(k)
+    arr, d = k.input_name, k.direction_name
+    shared = _shared_for_directions(k)
+    nsh = max(len(shared), 1)
+    lines = ["size_t i0, j, kd;", f"double sh[{nsh} * {P}_TILE];"]
+    if not shared:
+        lines.append("sh[0] = 0.0;")
+    lines += [f"for (i0 = 0; i0 < n; i0 += {P}_TILE) {{",
+              f"    const size_t nt = n - i0 < {P}_TILE ? n - i0 : {P}_TILE;",
+              f"    {P}_SIMD_LOOP",
+              "    for (j = 0; j < nt; ++j) {",
+              "        const size_t i = i0 + j;"]
+    body = _c_statements(ks, k, lambda i: f"{arr}[{i} * n + i]",
+                         lambda j: f"params[{j} + i * params_stride]", lambda i: "", outputs=[],
+                         unused_stride=True, extra_used=set(shared) | k.used_symbols())
+    body += [f"sh[{q} * {P}_TILE + j] = {s.name};" for q, s in enumerate(shared)]
+    body += ["if (f) {"] + [f"    f[{i} * n + i] = {_c_printer(ks)(e)};"
+                            for i, e in enumerate(k.outputs)] + ["}"]
+    lines += ["        " + x for x in body] + ["    }"]
+    per = [f"const size_t i = i0 + j;"]
+    per += [f"const double {s.name} = sh[{q} * {P}_TILE + j];" for q, s in enumerate(shared)]
+    per += _direction_part(ks, k, lambda i: f"{d}[(kd * {n_dir} + {i}) * n + i]",
+                           lambda i: f"out[(kd * {n_out} + {i}) * n + i]")
+    lines += ["    for (kd = 0; kd < m; ++kd) {", f"        {P}_SIMD_LOOP",
+              "        for (j = 0; j < nt; ++j) {"]
+    lines += ["            " + x for x in per] + ["        }", "    }", "}"]
+    return lines
+
+
 # -- NumPy -----------------------------------------------------------------------------------
 def _np_body(ks: KernelSet, k: Kernel) -> list[str]:
+    lines = _np_steps(ks, k)
+    if k.directional:
+        return lines + _np_directions(ks, k)
+    return lines + _np_outputs(k)
+
+
+def _np_directions(ks: KernelSet, k: Kernel) -> list[str]:
+    """The per-direction statements over arrays with one more axis (the m directions): the
+    shared values they read gain a trailing axis of length 1."""
+    pr = Printer("numpy")
+    d = k.direction_name
+    n_out = len(k.direction_outputs)
+    lines = [f"{d} = np.asarray({d}, dtype=np.float64)"]
+    lines += [f"{s.name} = np.expand_dims({s.name}, -1)" for s in _shared_for_directions(k)]
+    used = symbols_read(k.direction_steps, k.direction_outputs)
+    lines += [f"{s.name} = {d}[..., {i}]" for i, s in enumerate(k.direction_symbols)
+              if s in used]
+    lines += [f"{st.target.name} = {pr(st.expr)}" for st in k.direction_steps]
+    lines.append(f"out = np.empty(np.broadcast_shapes(shape + (1,), {d}.shape[:-1]) + "
+                 f"({n_out},))")
+    lines += [f"out[..., {i}] = {pr(e)}" for i, e in enumerate(k.direction_outputs)]
+    lines.append(f"return out.reshape(out.shape[:-1] + {tuple(k.direction_shape)!r})")
+    return lines
+
+
+def _np_steps(ks: KernelSet, k: Kernel) -> list[str]:
+    """Inputs, parameters and the (shared) steps of a kernel, vectorised over states."""
     pr = Printer("numpy")
     used = k.used_symbols()
     arr = k.input_name
@@ -791,6 +955,12 @@ def _np_body(ks: KernelSet, k: Kernel) -> list[str]:
                 for r in range(n):
                     lines.append(f"{st.results[c][r].name} = {X}[..., {r}, {c}]")
             solve_index += 1
+    return lines
+
+
+def _np_outputs(k: Kernel) -> list[str]:
+    pr = Printer("numpy")
+    lines = []
     if k.output_shape == ():
         lines.append("out = np.empty(shape)")
         lines.append(f"out[...] = {pr(k.outputs[0])}")
@@ -813,7 +983,14 @@ def numpy_module(ks: KernelSet, env=None) -> str:
         doc = (f"{k.doc}. {k.input_name}: (..., {n_in}) = {_input_layout(ks, k)}; "
                f"returns (...{', ' if k.output_shape else ''}"
                f"{', '.join(str(s) for s in k.output_shape)}).")
+        if k.directional:
+            doc = (f"{k.doc}. {k.input_name}: (..., {n_in}) = {_input_layout(ks, k)}; "
+                   f"{k.direction_name}: (..., m, {len(k.direction_symbols)}); returns "
+                   f"(..., m, {', '.join(str(s) for s in k.direction_shape)}) (f: the RHS "
+                   "kernel).")
         functions.append({"name": k.name, "input": k.input_name,
+                          "args": ", ".join([k.input_name] + ([k.direction_name]
+                                                              if k.directional else [])),
                           "doc": doc.replace("\\", "/").replace('"""', "'''"),
                           "body": _np_body(ks, k)})
     banner = "\n".join("# " + line for line in banner_lines(ks))

@@ -68,6 +68,21 @@ class Kernel:
     ops_before: int
     ops_after: int
     seconds: float = field(default=0.0, compare=False)
+    # A directional kernel (metricc.tangent) also runs a second straight-line program once
+    # per direction: direction_symbols[k] stands for component k of one direction (the
+    # array ``direction_name``), direction_steps (Assigns only) may read them and anything
+    # ``steps`` defined, and direction_outputs (row-major over direction_shape) is its
+    # result. ``outputs`` are then the plain right-hand side f(y), printed by the same
+    # statements as the RHS kernel's (so bit-identical to it).
+    direction_name: str = ""
+    direction_symbols: tuple = ()
+    direction_steps: tuple = ()
+    direction_outputs: tuple = ()
+    direction_shape: tuple = ()
+
+    @property
+    def directional(self) -> bool:
+        return bool(self.direction_symbols)
 
     @property
     def output_size(self) -> int:
@@ -77,8 +92,10 @@ class Kernel:
         return size
 
     def used_symbols(self) -> set[sp.Symbol]:
-        """Every symbol the steps and outputs read (inputs, parameters, temporaries)."""
-        return symbols_read(self.steps, self.outputs)
+        """Every symbol the steps and outputs read (inputs, parameters, temporaries), the
+        per-direction program's included."""
+        return symbols_read(self.steps + self.direction_steps,
+                            self.outputs + self.direction_outputs)
 
 
 @dataclass(frozen=True)
@@ -234,6 +251,11 @@ def build_kernels(geo: Geometry, extra: tuple[str, ...] = ()) -> KernelSet:
         stops = [e for _, e in geo.events] + [e for _, e in geo.domain]
         kernels.append(_make("stops", "the events, then the domain expressions", "x", x,
                              (len(stops),), stops, []))
+    # tangent, transport, parameter-derivative and stop-gradient kernels: forward mode on
+    # the kernels above (metricc.tangent)
+    from .tangent import carry_kernels
+    kernels += carry_kernels(kernels, geo.params, dim,
+                             _hamilton_transport_matrix(geo, metric_defs))
     blocks = tuple({"coordinates": [spec.coordinates[i] for i in b.indices],
                     "strategy": b.strategy, "form": b.form, "cost_symbolic": b.cost_symbolic,
                     "cost_numeric": b.cost_numeric} for b in geo.blocks)
@@ -352,6 +374,20 @@ def _hamilton_kernel(geo: Geometry, metric_defs) -> Kernel:
     return _make("hamilton_rhs", "d/dlambda [x^mu, p_mu] = [dH/dp_mu, -dH/dx^mu], "
                  "H = 1/2 g^{ab} p_a p_b", "z", geo.coords + geo.momentum, (2 * dim,), outs,
                  pinned, solves)
+
+
+def _hamilton_transport_matrix(geo: Geometry, metric_defs) -> Kernel:
+    """M[a][c] = Gamma^c_{ab} u^b with u = g^-1 p, for states [x, p]: the matrix of
+    covariant parallel transport, dV_a/dlambda = M[a][c] V_c (metricc.tangent)."""
+    dim = geo.dim
+    solves, cols = _apply_inverse(geo, [list(geo.momentum)], "tu")
+    pins = list(metric_defs) + [(geo.velocity[a], cols[0][a]) for a in range(dim)]
+    columns = [[sp.Add(*[geo.christoffel_first(d, a, b) * geo.velocity[b] for b in range(dim)])
+                for d in range(dim)] for a in range(dim)]
+    solves2, mcols = _apply_inverse(geo, columns, "tm")
+    outs = [mcols[a][c] for a in range(dim) for c in range(dim)]
+    return _make("hamilton_transport_matrix", "Gamma^c_{ab} u^b, [a][c]", "z",
+                 geo.coords + geo.momentum, (dim, dim), outs, pins, solves + solves2)
 
 
 def _momentum_norm_kernel(geo: Geometry, metric_defs) -> Kernel:

@@ -216,6 +216,83 @@ class MetricKernels:
         """d f_i / d z_j of hamilton_rhs: (..., 2*dim) -> (..., 2*dim, 2*dim) [..., i, j]."""
         return self._optional("hamilton_jacobian", "jacobian", z, params)
 
+    # -- derivatives for carried quantities (metricc.tangent) ----------------------------
+    def tangent(self, y, dy, params=None, form: str = "geodesic") -> np.ndarray:
+        """J(y) dy for m directions: y (..., 2*dim), dy (..., m, 2*dim) -> (..., m, 2*dim),
+        J = d f / d y of the form's right-hand side (geodesic_rhs or hamilton_rhs), computed
+        by forward mode without forming J."""
+        return self._call_directional(f"{_form(form)}_tangent", y, dy, params)
+
+    def transport_rhs(self, y, v, params=None, form: str = "geodesic") -> np.ndarray:
+        """dV/dlambda of parallel transport for m vectors: y (..., 2*dim), v (..., m, dim) ->
+        (..., m, dim). form="geodesic": V contravariant, dV^a = -Gamma^a_{bc} u^b V^c;
+        form="hamilton": y = [x, p], V covariant, dV_a = Gamma^c_{ab} u^b V_c."""
+        return self._call_directional(f"{_form(form)}_transport", y, v, params)
+
+    def param_derivative(self, y, params=None, form: str = "geodesic") -> np.ndarray:
+        """d f / d params of the form's right-hand side: y (..., 2*dim) -> (..., NPAR,
+        2*dim), parameters in the order of ``parameters``."""
+        name = f"{_form(form)}_param_derivative"
+        if name not in self.kernel_info:
+            arr = self._check_input(f"{_form(form)}_rhs", y)
+            return np.zeros(arr.shape[:-1] + (0, 2 * self.dim))
+        return self._call(name, y, params)
+
+    def stops_gradient(self, x, params=None) -> np.ndarray:
+        """d/d[x, params] of the stop functions (events, then domain expressions): x (...,
+        dim) -> (..., nstop, dim + NPAR)."""
+        if "stops_gradient" not in self.kernel_info:
+            arr = self._check_input("metric", x)
+            return np.zeros(arr.shape[:-1] + (0, self.dim + len(self.parameters)))
+        return self._call("stops_gradient", x, params)
+
+    def _call_directional(self, kernel: str, arr, dirs, params) -> np.ndarray:
+        info = self.kernel_info[kernel]
+        arr = self._check_input(kernel, arr)
+        d_in = info["direction_size"]
+        dirs = np.asarray(dirs, dtype=np.float64)
+        if dirs.ndim < 2 or dirs.shape[-1] != d_in:
+            raise ValueError(f"{self.name}.{kernel}: expected directions of shape (..., m, "
+                             f"{d_in}), got an array of shape {dirs.shape}")
+        given = self._params(params, arr.shape[:-1])
+        try:
+            batch = np.broadcast_shapes(arr.shape[:-1], dirs.shape[:-2],
+                                        *[v.shape for v in given.values()])
+        except ValueError:
+            raise ValueError(f"{self.name}.{kernel}: states of shape {arr.shape} and "
+                             f"directions of shape {dirs.shape} have different batch axes"
+                             ) from None
+        m = dirs.shape[-2]
+        out_shape = tuple(info["direction_output_shape"])
+        n_out = int(np.prod(out_shape, dtype=np.int64))
+        n_in = info["input_size"]
+        count = int(np.prod(batch, dtype=np.int64))
+        flat = np.ascontiguousarray(np.broadcast_to(arr, batch + (n_in,))).reshape(-1, n_in)
+        dflat = np.ascontiguousarray(np.broadcast_to(dirs, batch + (m, d_in))).reshape(
+            -1, m, d_in)
+        values = [np.broadcast_to(given.get(p, np.float64(d)), batch).reshape(-1)
+                  for p, d in self.parameters.items()]
+        out = np.empty((count, m, n_out), dtype=np.float64)
+        if count and m:
+            if self._c is None:
+                fn = getattr(self._np, kernel)
+                with np.errstate(all="ignore"):
+                    for start in range(0, count, NUMPY_CHUNK):
+                        stop = min(count, start + NUMPY_CHUNK)
+                        out[start:stop] = fn(flat[start:stop], dflat[start:stop],
+                                             tuple(p[start:stop] for p in values)
+                                             ).reshape(-1, m, n_out)
+            else:
+                ffi, lib = self._c.ffi, self._c.lib
+                npar = len(values)
+                pvec = (np.ascontiguousarray(np.stack(values, axis=-1)) if npar
+                        else np.zeros(1))
+                getattr(lib, f"{self.name}_{kernel}_batch")(
+                    count, ffi.from_buffer("double[]", flat), m,
+                    ffi.from_buffer("double[]", dflat), ffi.from_buffer("double[]", pvec),
+                    npar, ffi.NULL, ffi.from_buffer("double[]", out))
+        return out.reshape(batch + (m,) + out_shape)
+
     # -- initial data and observers (metricc.observers) ----------------------------------
     def normalize(self, y, kind: str = "timelike", solve_for: int = 0, params=None) -> np.ndarray:
         """States [x, u] (..., 2*dim) with g(u,u) = -1 ("timelike"), 0 ("null") by solving
@@ -532,6 +609,12 @@ class MetricKernels:
             fn(count, ffi.from_buffer("double[]", flat), ffi.from_buffer("double[]", pvec),
                stride, ffi.from_buffer("double[]", out))
         return out.reshape(batch + out_shape)
+
+
+def _form(form: str) -> str:
+    if form not in ("geodesic", "hamilton"):
+        raise ValueError(f"form must be 'geodesic' or 'hamilton', got {form!r}")
+    return form
 
 
 _WORKER: list = []   # [(process id, executor)]: the thread that runs C integrations

@@ -87,13 +87,17 @@ def _parser() -> argparse.ArgumentParser:
     g.add_argument("spec", metavar="SPEC", help="spec file (.toml)")
     g.add_argument("--input", "-i", required=True, metavar="FILE",
                    help="initial states: .npy, or text (.txt/.csv, one state per row), shape "
-                        "(N, 2*dim)")
+                        "(N, 2*dim); or .npz with key y0 (the states) and optionally "
+                        "transport (N, m, dim: vectors to parallel-transport) and variations "
+                        "(N, m, 2*dim: initial directions of the tangent equations)")
     g.add_argument("--lam-end", type=float, required=True, metavar="L",
                    help="affine parameter to integrate to (negative: backward)")
     g.add_argument("--output", "-o", required=True, metavar="FILE.npz",
                    help="results as a NumPy .npz archive (the name must end in .npz): y, lam, "
                         "status, steps, drift, invariant_drift_<name> for each of the "
-                        "spec's [invariants] (and samples, sample_lam)")
+                        "spec's [invariants] (and samples, sample_lam); with carried "
+                        "quantities also transport, variations (and their _samples) and "
+                        "param_variation_<name>")
     g.add_argument("--param", action="append", default=[], metavar="NAME=VALUE",
                    help="override a parameter (repeatable)")
     g.add_argument("--form", choices=("geodesic", "hamilton"), default="geodesic",
@@ -116,6 +120,15 @@ def _parser() -> argparse.ArgumentParser:
     g.add_argument("--threads", type=int, default=None,
                    help="most threads the C integrator uses (default: as many as OpenMP "
                         "offers; the NumPy backend runs on one)")
+    g.add_argument("--variations", choices=("all",), default=None,
+                   help="all: carry the full state transition matrix; variations[i, j] = "
+                        "d y_end_i / d y0_j (only when the input file holds no variations)")
+    g.add_argument("--param-variations", default=None, metavar="LIST",
+                   help="comma-separated parameter names, or all: write d y_end / d param "
+                        "as param_variation_<name>")
+    g.add_argument("--carried-error", action=argparse.BooleanOptionalAction, default=True,
+                   help="carried quantities join the step-size control (default); with "
+                        "--no-carried-error the steps are those of a plain run")
     g.add_argument("--backend", choices=("auto", "c", "numpy"), default="auto",
                    help="c (compiled), numpy, or auto: C where a compiler works, else NumPy "
                         "(default auto)")
@@ -283,17 +296,58 @@ class ProgressBar:
         self.stream.flush()
 
 
+INPUT_KEYS = ("y0", "transport", "variations")   # what an .npz input file may hold
+
+
 def _read_states(path: str):
+    """(y0, {"transport": ..., "variations": ...}) from an input file; the dict is empty
+    unless the file is an .npz archive holding carried vectors."""
     import numpy as np
     p = Path(path)
     try:
+        if p.suffix == ".npz":
+            return _read_archive(path)
         if p.suffix == ".npy":
             arr = np.load(p, allow_pickle=False)
         else:
             arr = np.loadtxt(p, delimiter="," if p.suffix == ".csv" else None, ndmin=2)
     except (OSError, ValueError) as exc:
         raise BuildError(f"cannot read states from {path}: {exc}") from None
-    return np.asarray(arr, dtype=np.float64)
+    return np.asarray(arr, dtype=np.float64), {}
+
+
+def _read_archive(path: str):
+    import numpy as np
+    with np.load(path, allow_pickle=False) as z:
+        keys = list(z.files)
+        extra = [key for key in keys if key not in INPUT_KEYS]
+        if extra or "y0" not in keys:
+            what = "no key 'y0' (the states)" if "y0" not in keys else \
+                f"unknown key {extra[0]!r}"
+            raise BuildError(f"{path}: {what}; an .npz input holds y0 and optionally "
+                             "transport and variations")
+        arrays = {}
+        for key in keys:
+            try:
+                arrays[key] = np.asarray(z[key], dtype=np.float64)
+            except (TypeError, ValueError) as exc:
+                raise BuildError(f"{path}: key {key!r}: not an array of numbers ({exc})") \
+                    from None
+    return arrays.pop("y0"), arrays
+
+
+def _check_carried(path: str, k, y0, carried: dict) -> None:
+    """BuildError naming the file and key when a carried array's shape does not go with the
+    states y0 (..., 2*dim): transport (..., m, dim), variations (..., m, 2*dim)."""
+    for key, width in (("transport", k.dim), ("variations", 2 * k.dim)):
+        arr = carried.get(key)
+        if arr is None:
+            continue
+        lead = y0.shape[:-1]
+        if arr.ndim != len(lead) + 2 or arr.shape[:-2] != lead or arr.shape[-1] != width:
+            want = "(" + "".join(f"{n}, " for n in lead) + f"m, {width})"
+            raise BuildError(f"{path}: key {key!r} has shape {arr.shape}; with states of "
+                             f"shape {y0.shape} it must be {want}")
 
 
 def cmd_integrate(args) -> int:
@@ -317,7 +371,16 @@ def cmd_integrate(args) -> int:
         raise BuildError(f"--output {args.output!r}: results are written as a NumPy .npz "
                          "archive; give a file name ending in .npz")
     k = load(args.spec, backend=args.backend)
-    y0 = _read_states(args.input)
+    y0, carried = _read_states(args.input)
+    _check_carried(args.input, k, y0, carried)
+    if args.variations == "all":
+        if "variations" in carried:
+            raise BuildError(f"--variations all: {args.input} already holds variations; "
+                             "give one or the other")
+        carried["variations"] = "all"
+    pv = args.param_variations
+    if pv is not None:
+        pv = True if pv.strip() == "all" else [p.strip() for p in pv.split(",") if p.strip()]
     events = None if args.events is None else [e for e in args.events.split(",") if e]
     samples = np.linspace(0.0, args.lam_end, args.samples) if args.samples > 0 else None
     show = sys.stderr.isatty() if args.progress is None else args.progress
@@ -326,11 +389,17 @@ def cmd_integrate(args) -> int:
         res = k.integrate(y0, args.lam_end, params=params or None, rtol=args.rtol,
                           atol=args.atol, max_steps=args.max_steps, events=events,
                           samples=samples, form=args.form, method=args.method,
-                          threads=args.threads, progress=bar)
+                          threads=args.threads, progress=bar, param_variations=pv,
+                          carried_error=args.carried_error, **carried)
     except ValueError as exc:
         raise BuildError(str(exc)) from None
     arrays = {"y": res.y, "lam": res.lam, "status": res.status, "steps": res.steps,
               "drift": res.drift}
+    for name in ("transport", "transport_samples", "variations", "variations_samples"):
+        if getattr(res, name) is not None:
+            arrays[name] = getattr(res, name)
+    for name, value in (res.param_variations or {}).items():
+        arrays[f"param_variation_{name}"] = value
     for name, value in res.invariant_drift.items():  # the spec's [invariants]
         arrays[f"invariant_drift_{name}"] = value
     if res.samples is not None:

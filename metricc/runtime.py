@@ -375,13 +375,36 @@ class MetricKernels:
     # -- integration -----------------------------------------------------------------------
     def integrate(self, y0, lam_end, params=None, rtol=1e-10, atol=1e-12, max_steps=100000,
                   events=None, samples=None, form="geodesic", method=None, threads=None,
-                  progress=None) -> IntegrationResult:
+                  progress=None, transport=None, variations=None, param_variations=None,
+                  carried_error=True) -> IntegrationResult:
         """Integrate a batch of geodesics from lambda = 0 to ``lam_end``; see docs/integrator.md.
 
         y0: (N, 2*dim) states [x, u] (form="geodesic") or [x, p] (form="hamilton"); any
         leading axes work and are kept in the result. Returns an IntegrationResult with y
         (N, 2*dim), lam (N,), status (N,) str, steps (N,), samples (N, S, 2*dim) or None, drift
         (N,).
+
+        Carried along each geodesic (S = 2*dim; leading axes broadcast to y0's):
+
+        - transport: (N, m, dim) vectors parallel-transported (form="geodesic": components
+          V^a; "hamilton": V_a) -> res.transport (N, m, dim), res.transport_samples
+          (N, S_samples, m, dim).
+        - variations: (N, m, S) initial directions in state space, or "all" (the identity) ->
+          res.variations (N, m, S), row k = d y_end / d y0 applied to direction k; for "all"
+          (N, S, S) with [i, j] = d y_end_i / d y0_j. res.variations_samples likewise.
+        - param_variations: parameter names, or True for all -> res.param_variations, dict
+          name -> (N, S) d y_end / d param with y0 held fixed.
+        - carried_error: True: carried components join the error norm; False: the steps
+          (and y, lam, status) are those of a plain run, bit for bit.
+
+        A state stopped by an event or a [domain] expression after at least one step has its
+        variations and parameter sensitivities moved to the crossing: the stop point
+        lambda* moves with the data, d lambda* = -(grad_x g . dx + dg/dp) / (grad_x g .
+        dx/dlambda) with g the event's expression, or for "domain" the domain expression
+        closest to 0 at the end; f(y_end) d lambda* is added. Samples and transported vectors
+        are not corrected; states that ended otherwise (done, max_steps, not_finite, ...)
+        return the derivatives as integrated. Nothing carried (the default): nothing
+        changes, bit for bit.
         """
         from .cluster import integrate_dask, is_dask_array
         from .integrate import check_options
@@ -389,7 +412,10 @@ class MetricKernels:
         if is_dask_array(y0):
             return integrate_dask(self, y0, lam_end, params=params, rtol=rtol, atol=atol,
                                   max_steps=max_steps, events=events, samples=samples,
-                                  form=form, method=method, threads=threads)
+                                  form=form, method=method, threads=threads,
+                                  transport=transport, variations=variations,
+                                  param_variations=param_variations,
+                                  carried_error=carried_error)
         from .integrate import DOMAIN, EVENT_BASE, IntegrationResult, integrate_numpy, \
             status_names
         from .tableaus import DEFAULT_METHOD, METHODS
@@ -436,11 +462,16 @@ class MetricKernels:
             sorted_samples = np.ascontiguousarray(samples[order])
         else:
             sorted_samples = None
+        from . import carry as carried
+        carry = carried.prepare(self, tuple(lead), form, transport, variations,
+                                param_variations, carried_error)
+        c_end = c_samp = None
+        nc = 0 if carry is None else carry.size
 
         if self._c is not None:
-            y_end, lam, codes, steps, samp = self._integrate_c(
+            y_end, lam, codes, steps, samp, c_end, c_samp = self._integrate_c(
                 flat, lam_end, values, given, rtol, atol, int(max_steps), active, sorted_samples,
-                form, method, threads, progress)
+                form, method, threads, progress, carry)
         else:
             fn = getattr(self._np, "geodesic_rhs" if form == "geodesic" else "hamilton_rhs")
             codes_list = []
@@ -455,14 +486,37 @@ class MetricKernels:
             def stop(x, p):
                 return stops_fn(x, p)[:, columns]
 
+            y_start, more = flat, {}
+            if nc:
+                # the augmented state [y, c]: the integrator carries c through steps, samples
+                # and stops; the base alone sets the starting step (and, without
+                # carried_error, the error norm)
+                fn = carried.numpy_rhs(self._np, form, carry)
+                y_start = np.concatenate([flat, carry.pack()], axis=1)
+                more = {"n_base": n, "n_control": n + nc if carry.error else n}
             y_end, lam, codes, steps, samp = integrate_numpy(
-                fn, stop if codes_list else None, flat, lam_end, tuple(values), rtol=rtol,
+                fn, stop if codes_list else None, y_start, lam_end, tuple(values), rtol=rtol,
                 atol=atol, max_steps=int(max_steps), method=method, samples=sorted_samples,
-                stop_codes=np.array(codes_list, dtype=np.int32), progress=progress)
+                stop_codes=np.array(codes_list, dtype=np.int32), progress=progress, **more)
+            if nc:
+                y_end, c_end = np.ascontiguousarray(y_end[:, :n]), y_end[:, n:].copy()
+                if samp is not None:
+                    samp, c_samp = samp[..., :n].copy(), samp[..., n:]
         if samp is not None:
             unsorted = np.empty_like(samp)
             unsorted[:, order] = samp
             samp = unsorted.reshape(lead + (len(samples), n))
+        extra = {}
+        if carry is not None:
+            if nc == 0:   # empty arrays asked for: shapes only
+                c_end = np.zeros((flat.shape[0], 0))
+                c_samp = None if samples is None else np.zeros((flat.shape[0], len(samples), 0))
+            if c_samp is not None:
+                unsorted = np.empty_like(c_samp)
+                unsorted[:, order] = c_samp
+                c_samp = unsorted
+            carried.correct_at_stops(self, carry, form, y_end, c_end, codes, steps, values)
+            extra = carry.results(c_end, c_samp)
         pdict = {p: v for p, v in zip(self.parameters, values)}
         with np.errstate(all="ignore"):
             start = self._call(norm_kernel, flat, pdict)
@@ -479,10 +533,14 @@ class MetricKernels:
             y=y_end.reshape(lead + (n,)), lam=lam.reshape(lead),
             status=status_names(codes, self.event_names).reshape(lead),
             steps=steps.astype(np.int64).reshape(lead), samples=samp,
-            drift=drift.reshape(lead), status_code=codes.reshape(lead))
+            drift=drift.reshape(lead), status_code=codes.reshape(lead), **extra)
 
     def _integrate_c(self, flat, lam_end, values, given, rtol, atol, max_steps, active, samples,
-                     form, method, threads, progress):
+                     form, method, threads, progress, carry=None):
+        """The compiled integrator on flat states (N, S): NAME_integrate_interruptible, or
+        NAME_integrate_carry when ``carry`` (metricc.carry.Carry) has carried components.
+        Returns (y_end, lam, codes, steps, samples, c_end, c_samples); the last two are None
+        without carried components."""
         ffi, lib = self._c.ffi, self._c.lib
         N, n = flat.shape
         opt = ffi.new(f"{self.name}_integrator_options *")
@@ -513,24 +571,45 @@ class MetricKernels:
         steps = np.empty(N, dtype=np.dtype(f"i{ffi.sizeof('long')}"))
         S = 0 if samples is None else len(samples)
         samp = np.full((N, S, n), np.nan) if S else None
-        fn = getattr(lib, f"{self.name}_integrate_interruptible")
+        nc = 0 if carry is None else carry.size
+        if nc:
+            fn = getattr(lib, f"{self.name}_integrate_carry")
+            copt, keep = _carry_options(ffi, self.name, carry)
+            c0 = carry.pack()
+            c_out = np.empty((N, nc))
+            c_samp = np.full((N, S, nc), np.nan) if S else None
+        else:
+            fn = getattr(lib, f"{self.name}_integrate_interruptible")
+            c_out = c_samp = None
         chunk = N if progress is None else max(64, -(-N // 100))
         s_ptr = ffi.from_buffer("double[]", samples) if S else ffi.NULL
         for start in range(0, N, max(chunk, 1)):
             stop = min(N, start + chunk)
             m = stop - start
             pv = pvec[start:stop] if stride else pvec
-            args = (m, ffi.from_buffer("double[]", flat[start:stop]), lam_end,
-                    ffi.from_buffer("double[]", pv), stride, opt, S, s_ptr,
-                    ffi.from_buffer("double[]", y_out[start:stop]),
+            y_ptr = ffi.from_buffer("double[]", flat[start:stop])
+            tail = (ffi.from_buffer("double[]", y_out[start:stop]),
                     ffi.from_buffer("double[]", lam[start:stop]),
                     ffi.from_buffer("int[]", codes[start:stop]),
                     ffi.from_buffer("long[]", steps[start:stop]),
-                    ffi.from_buffer("double[]", samp[start:stop]) if S else ffi.NULL, flag)
+                    ffi.from_buffer("double[]", samp[start:stop]) if S else ffi.NULL)
+            if nc:
+                # (n, y0, c0, lam_end, params, stride, opt, carry, n_samples, samples,
+                #  y_out, c_out, lam, status, steps, samples_out, c_samples_out, interrupt)
+                args = (m, y_ptr, ffi.from_buffer("double[]", c0[start:stop]), lam_end,
+                        ffi.from_buffer("double[]", pv), stride, opt, copt, S, s_ptr,
+                        tail[0], ffi.from_buffer("double[]", c_out[start:stop])) + tail[1:] + (
+                        ffi.from_buffer("double[]", c_samp[start:stop]) if S else ffi.NULL,
+                        flag)
+            else:
+                args = (m, y_ptr, lam_end, ffi.from_buffer("double[]", pv), stride, opt, S,
+                        s_ptr) + tail + (flag,)
             _interruptible(fn, args, flag)
             if progress is not None:
                 progress(stop, N)
-        return y_out, lam, codes.astype(np.int32), steps, samp
+        if nc:
+            del keep   # the parameter index array lived as long as the calls
+        return y_out, lam, codes.astype(np.int32), steps, samp, c_out, c_samp
 
     # -- plumbing ------------------------------------------------------------------------
     def _check_input(self, kernel: str, arr) -> np.ndarray:
@@ -609,6 +688,19 @@ class MetricKernels:
             fn(count, ffi.from_buffer("double[]", flat), ffi.from_buffer("double[]", pvec),
                stride, ffi.from_buffer("double[]", out))
         return out.reshape(batch + out_shape)
+
+
+def _carry_options(ffi, name: str, carry):
+    """NAME_carry_options for a Carry, and the cffi objects it points into (keep them alive
+    for the calls)."""
+    copt = ffi.new(f"{name}_carry_options *")
+    copt.n_transport = carry.n_transport
+    copt.n_variations = carry.n_variations
+    copt.n_param = carry.n_param
+    index = ffi.new("int[]", list(carry.param_index) or [0])
+    copt.param_index = index
+    copt.error_control = 1 if carry.error else 0
+    return copt, index
 
 
 def _form(form: str) -> str:

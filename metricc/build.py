@@ -535,6 +535,7 @@ def ensure_binary(entry: CacheEntry) -> CacheEntry:
 # 9.4 and 14.5 us per call; Ricci (13,000) takes 5.2 s at -O1. The NumPy-free kernels a
 # user integrates with (core) keep -O3.
 GROUP_OPT = ((20000, ["-O0"]), (4000, ["-O1"]), (0, ["-O2"]))
+CARRY_O3_OPS = 4000
 COMPILE_TIMEOUT = 600
 
 
@@ -568,6 +569,9 @@ def kernel_units(manifest: dict) -> list[tuple[str, list[str]]]:
             continue
         largest = max(kernels[n]["ops_after"] for n in names)
         opt = next(flags for floor, flags in GROUP_OPT if largest > floor)
+        if sec == "carry" and largest <= CARRY_O3_OPS:
+            opt = []      # the integrator's carried quantities run on these: -O3, as core
+
         units.append((sec, [f"-D{P}_SKIP_INTEGRATOR",
                             *(flag for other, flag in skip.items() if other != sec), *opt]))
     return units

@@ -503,7 +503,7 @@ def tile_prototype(ks: KernelSet, k: Kernel) -> str:
             f"int aos, const double *{r} params, size_t params_stride, double *{r} out)")
 
 
-def _tile_body(ks: KernelSet, k: Kernel) -> list[str]:
+def _tile_body(ks: KernelSet, k: Kernel, direct: bool = False) -> list[str]:
     """One tile of {P}_TILE states. y and out point at the tile's first state of arrays of n
     states, laid out as y[n][size] when aos, else y[size][n]; its parameters are at
     params + j*params_stride. The tile is copied into a local buffer (in[c*TILE + j]) and
@@ -520,6 +520,12 @@ def _tile_body(ks: KernelSet, k: Kernel) -> list[str]:
     read = [c for c, s in enumerate(k.input_symbols) if s in used]
     pread = [q for q, s in enumerate(ks.param_symbols) if s in used]
     lines = ["size_t j;", f"double in[{n_in} * {P}_TILE], res[{n_out} * {P}_TILE];"]
+    if direct:
+        # y and out are tiles already (y[c][TILE], out[c][TILE]): no copies, whose loops
+        # (unrolled over every output, in both layouts) would dwarf a wide kernel's code
+        inp = lambda c: f"y[{c} * {P}_TILE + j]"               # noqa: E731
+        res = lambda c: f"out[{c} * {P}_TILE + j]"             # noqa: E731
+        lines = ["size_t j;", "(void)n;", "(void)aos;"]
     if pread:
         # the parameters too: a run-time stride (0 for shared parameters) in the vectorised
         # loops would make every read a gather
@@ -528,7 +534,7 @@ def _tile_body(ks: KernelSet, k: Kernel) -> list[str]:
         lines += [f"    par[{q} * {P}_TILE + j] = params[{q} + j * params_stride];"
                   for q in pread]
         lines += ["}"]
-    if read:
+    if read and not direct:
         # every component of an array-of-structures tile, used or not: a group without gaps
         # lets the compiler load whole states and shuffle them instead of gathering
         lines += ["if (aos) {", f"    for (j = 0; j < {P}_TILE; ++j) {{"]
@@ -536,7 +542,7 @@ def _tile_body(ks: KernelSet, k: Kernel) -> list[str]:
         lines += ["    }", "} else {", f"    for (j = 0; j < {P}_TILE; ++j) {{"]
         lines += [f"        in[{c} * {P}_TILE + j] = y[{c} * n + j];" for c in read]
         lines += ["    }", "}"]
-    else:
+    elif not read:
         lines += ["(void)y;"]
     if not any(s in used for s in ks.param_symbols):
         lines += ["(void)params;", "(void)params_stride;"]
@@ -576,6 +582,8 @@ def _tile_body(ks: KernelSet, k: Kernel) -> list[str]:
                            outputs=list(split.outputs), mark_unused=False)
     lines += [f"{P}_SIMD_LOOP", f"for (j = 0; j < {P}_TILE; ++j) {{"]
     lines += ["    " + x for x in arith] + ["}"]
+    if direct:
+        return lines
     lines += ["if (aos) {", f"    for (j = 0; j < {P}_TILE; ++j) {{"]
     lines += [f"        out[j * {n_out} + {c}] = res[{c} * {P}_TILE + j];" for c in range(n_out)]
     lines += ["    }", "} else {", f"    for (j = 0; j < {P}_TILE; ++j) {{"]
@@ -721,8 +729,13 @@ def c_source(ks: KernelSet, env=None, preamble: str = "") -> str:
         soa = soa_prototype(ks, k, f"{P}_RESTRICT")
         if k.directional:
             functions += [{"prototype": single, "body": _c_directional_body(ks, k)},
-                          {"prototype": batch, "body": _c_directional_batch(ks, k)},
-                          {"prototype": soa, "body": _c_directional_soa(ks, k)}]
+                          {"prototype": batch, "body": _c_directional_batch(ks, k)}]
+            if _tiled_directional(k):
+                sk = _shared_kernel(k)
+                functions.append({"prototype": tile_prototype(ks, sk),
+                                  "body": _tile_body(ks, sk, direct=True)})
+                soa = f"{P}_CLONES " + soa
+            functions.append({"prototype": soa, "body": _c_directional_soa(ks, k)})
             continue
         functions.append({"prototype": single, "body": _c_body(ks, k)})
         if name in TILED_KERNELS:
@@ -857,39 +870,88 @@ def _c_directional_batch(ks: KernelSet, k: Kernel) -> list[str]:
                f"i * m * {n_dir}, {pexpr}, f ? f + i * {n_f} : f, out + i * m * {n_out});"])
 
 
+# Directional kernels whose directions read more shared values than this keep the plain
+# structure-of-arrays loop: the tiled one buffers them on the stack (TILE doubles each).
+MAX_TILE_SHARED = 2000
+
+
+def _shared_kernel(k: Kernel) -> Kernel:
+    """The shared part of a directional kernel as a plain kernel, for the tile machinery:
+    outputs f, then the values the directions read (see _shared_for_directions)."""
+    shared = _shared_for_directions(k)
+    outs = tuple(k.outputs) + tuple(shared)
+    return Kernel(name=f"{k.name}_shared", doc=k.doc, input_name=k.input_name,
+                  input_symbols=k.input_symbols, output_shape=(len(outs),), steps=k.steps,
+                  outputs=outs, ops_before=k.ops_before, ops_after=k.ops_after)
+
+
+def _tiled_directional(k: Kernel) -> bool:
+    return len(_shared_for_directions(k)) <= MAX_TILE_SHARED
+
+
 def _c_directional_soa(ks: KernelSet, k: Kernel) -> list[str]:
-    """Structure of arrays in tiles of P_TILE states: a loop over the tile runs the shared
-    statements (library calls and all) and keeps the values the directions read in a
-    buffer; then, per direction, a loop over the tile runs the direction's statements, plain
-    arithmetic that the compiler vectorises."""
+    """Structure of arrays in tiles of P_TILE states. The shared part runs as the tiled
+    right-hand sides do (NAME_<kernel>_shared_tile: calls and arithmetic in separate loops,
+    vectorised, bit-identical to the single-state function) on a copy of the tile (the
+    last tile padded with its first state), leaving f and the values the directions read
+    in a buffer; then, per direction, a vectorised loop over the tile runs the direction's
+    statements."""
+    if not _tiled_directional(k):
+        return _c_directional_soa_plain(ks, k)
     P = _c_prefix(ks)
     n_in, n_dir, n_out = _directional_sizes(k)
-    arr, d = k.input_name, k.direction_name
+    npar = len(ks.parameters)
+    n_f = len(k.outputs)
     shared = _shared_for_directions(k)
-    nsh = max(len(shared), 1)
-    lines = ["size_t i0, j, kd;", f"double sh[{nsh} * {P}_TILE];"]
-    if not shared:
-        lines.append("sh[0] = 0.0;")
+    d = k.direction_name
+    lines = ["size_t i0, j, kd, c;",
+             f"double yt[{n_in} * {P}_TILE], sh[{n_f + len(shared)} * {P}_TILE];"]
+    if npar:
+        lines.append(f"double pt[{npar} * {P}_TILE];")
+    else:
+        lines.append("(void)params_stride;")
     lines += [f"for (i0 = 0; i0 < n; i0 += {P}_TILE) {{",
               f"    const size_t nt = n - i0 < {P}_TILE ? n - i0 : {P}_TILE;",
-              f"    {P}_SIMD_LOOP",
-              "    for (j = 0; j < nt; ++j) {",
-              "        const size_t i = i0 + j;"]
-    body = _c_statements(ks, k, lambda i: f"{arr}[{i} * n + i]",
-                         lambda j: f"params[{j} + i * params_stride]", lambda i: "", outputs=[],
-                         unused_stride=True, extra_used=set(shared) | k.used_symbols())
-    body += [f"sh[{q} * {P}_TILE + j] = {s.name};" for q, s in enumerate(shared)]
-    body += ["if (f) {"] + [f"    f[{i} * n + i] = {_c_printer(ks)(e)};"
-                            for i, e in enumerate(k.outputs)] + ["}"]
-    lines += ["        " + x for x in body] + ["    }"]
-    per = [f"const size_t i = i0 + j;"]
-    per += [f"const double {s.name} = sh[{q} * {P}_TILE + j];" for q, s in enumerate(shared)]
+              f"    for (j = 0; j < {P}_TILE; ++j) {{",
+              "        const size_t i = i0 + (j < nt ? j : 0);",
+              f"        for (c = 0; c < {n_in}; ++c) yt[c * {P}_TILE + j] = {k.input_name}[c * n + i];"]
+    if npar:
+        lines.append(f"        for (c = 0; c < {npar}; ++c) pt[j * {npar} + c] = "
+                     "params[c + i * params_stride];")
+    lines += ["    }",
+              f"    {ks.name}_{k.name}_shared_tile(yt, {P}_TILE, 0, "
+              f"{'pt' if npar else 'params'}, {npar}, sh);",
+              "    if (f)",
+              f"        for (c = 0; c < {n_f}; ++c)",
+              "            for (j = 0; j < nt; ++j)",
+              f"                f[c * n + i0 + j] = sh[c * {P}_TILE + j];"]
+    per = ["const size_t i = i0 + j;"]
+    per += [f"const double {s.name} = sh[{n_f + q} * {P}_TILE + j];"
+            for q, s in enumerate(shared)]
     per += _direction_part(ks, k, lambda i: f"{d}[(kd * {n_dir} + {i}) * n + i]",
                            lambda i: f"out[(kd * {n_out} + {i}) * n + i]")
     lines += ["    for (kd = 0; kd < m; ++kd) {", f"        {P}_SIMD_LOOP",
               "        for (j = 0; j < nt; ++j) {"]
     lines += ["            " + x for x in per] + ["        }", "    }", "}"]
     return lines
+
+
+def _c_directional_soa_plain(ks: KernelSet, k: Kernel) -> list[str]:
+    """Structure of arrays without tiles: per state the shared statements, then its
+    directions (a very large kernel, whose shared values would not fit a stack buffer)."""
+    n_in, n_dir, n_out = _directional_sizes(k)
+    arr, d = k.input_name, k.direction_name
+    lines = ["size_t i, kd;", "for (i = 0; i < n; ++i) {"]
+    body = _c_statements(ks, k, lambda i: f"{arr}[{i} * n + i]",
+                         lambda j: f"params[{j} + i * params_stride]", lambda i: "", outputs=[],
+                         unused_stride=True, extra_used=k.used_symbols())
+    body += ["if (f) {"] + [f"    f[{i} * n + i] = {_c_printer(ks)(e)};"
+                            for i, e in enumerate(k.outputs)] + ["}"]
+    body += ["for (kd = 0; kd < m; ++kd) {"]
+    body += ["    " + x for x in _direction_part(
+        ks, k, lambda i: f"{d}[(kd * {n_dir} + {i}) * n + i]",
+        lambda i: f"out[(kd * {n_out} + {i}) * n + i]")] + ["}"]
+    return lines + ["    " + x for x in body] + ["}"]
 
 
 # -- NumPy -----------------------------------------------------------------------------------

@@ -23,7 +23,7 @@ import time
 import sympy as sp
 
 from .kernels import Assign, Kernel, Solve, _forward_aliases, _schedule, live_steps
-from .printing import count_ops
+from .printing import count_ops, is_library_call, library_calls
 from .geometry import numeric_solve_cost
 
 
@@ -139,8 +139,31 @@ class _Forward:
         repl, reduced = sp.cse([e for _, e in self.partials],
                                symbols=sp.numbered_symbols(f"pc{self.tag}_", real=True),
                                order="canonical", list=True)
-        return ([Assign(s, e) for s, e in repl] + [Assign(s, e) for s, e in zip(syms, reduced)]
-                + list(self.solves))
+        steps = [Assign(s, e) for s, e in repl] + [Assign(s, e) for s, e in zip(syms, reduced)]
+        return self._name_calls(steps) + list(self.solves)
+
+    def _name_calls(self, steps: list) -> list:
+        """Every library call of ``steps`` (cos, exp, ...: printing.is_library_call) as a
+        statement of its own, named lq<tag><n>, as the plain kernels have theirs
+        (kernels._name_calls): the tiled batch code runs calls and arithmetic in separate
+        loops."""
+        out, names = [], {}
+
+        def lift(e):
+            for c in reversed([c for c in library_calls([e]) if c not in names]):
+                sym = sp.Symbol(f"lq{self.tag}{len(names)}", real=True)
+                out.append(Assign(sym, c.xreplace(names)))     # innermost calls first
+                names[c] = sym
+            return e.xreplace(names)
+
+        for st in steps:
+            if is_library_call(st.expr) and st.expr not in names:
+                # the statement is a call itself: only its arguments need naming
+                out.append(Assign(st.target, st.expr.func(*[lift(a) for a in st.expr.args])))
+                names[st.expr] = st.target
+            else:
+                out.append(Assign(st.target, lift(st.expr)))
+        return out
 
 
 def _ops(steps, outputs) -> int:

@@ -310,6 +310,34 @@ def test_dask_path_equals_the_plain_path():
                                   k.integrate(y0, 12.0, variations="all").variations)
 
 
+class _InlineClient:
+    """A dask.distributed Client stand-in that runs each task at once, in order: enough to
+    check how map_integrate splits and joins the arrays."""
+
+    def submit(self, fn, *args, pure=None):
+        return fn(*args)
+
+    def gather(self, futures):
+        return list(futures)
+
+
+def test_map_integrate_splits_carried_arrays_with_the_states():
+    from metricc.cluster import map_integrate
+    k = kernels("kerr", "numpy")
+    y0 = np.concatenate([kerr_states(k), kerr_states(k)[::-1]]).reshape(2, 2, 8)
+    rng = np.random.default_rng(4)
+    vt, vv = rng.normal(size=(2, 2, 1, 4)), rng.normal(size=(2, 2, 2, 8))
+    kw = {"transport": vt, "variations": vv, "param_variations": ["a"], "samples": [3.0]}
+    ref = k.integrate(y0, 12.0, **kw)
+    res = map_integrate(_InlineClient(), k, y0, 12.0, chunk_size=3, **kw)
+    for f in ("y", "transport", "transport_samples", "variations", "variations_samples"):
+        np.testing.assert_array_equal(getattr(res, f), getattr(ref, f), err_msg=f)
+    np.testing.assert_array_equal(res.param_variations["a"], ref.param_variations["a"])
+    every = map_integrate(_InlineClient(), k, y0, 12.0, chunk_size=3, variations="all")
+    np.testing.assert_array_equal(every.variations,
+                                  k.integrate(y0, 12.0, variations="all").variations)
+
+
 # -- command line ----------------------------------------------------------------------------
 def _cli(args):
     from metricc.cli import main

@@ -473,3 +473,43 @@ def test_jacobi_bundle_example():
     for tau, r, transverse, ratio, radial, two_runs in rows:
         assert r < 12.0 and abs(transverse - ratio) <= 2e-8, (tau, transverse, ratio)
         assert radial > 1.0 and abs(radial - two_runs) <= 1e-5 * radial, (tau, radial, two_runs)
+
+
+# -- variations against finite differences, the other inverse strategies ----------------------
+def _strategy_case(name):
+    """Two states per spec (test inputs, default parameters): Kerr-Schild (rank-one inverse)
+    with one photon falling through the horizon event and one passing; dense4 (numeric
+    inverse) with two unit-speed geodesics."""
+    k = kernels(name, "numpy")
+    if name == "kerr_schild":
+        y = np.array([[0.0, 6.0, 0.5, 0.3, 1.0, -1.0, 0.05, 0.0],
+                      [0.0, 8.0, 1.0, -0.5, 1.0, 0.0, 0.6, 0.1]])
+        return k.normalize(y, "null"), 12.0
+    y = np.array([[0.3, -1.0, 0.5, 2.0, 1.0, 0.2, -0.4, 0.1],
+                  [-2.0, 1.0, 0.0, -0.5, -0.3, 0.8, 0.1, 0.5]])
+    return k.normalize(y, "unit"), 5.0
+
+
+@pytest.mark.parametrize("form", FORMS)
+@pytest.mark.parametrize("backend", BACKENDS)
+@pytest.mark.parametrize("name", ["kerr_schild", "dense4"])
+def test_strategies_match_finite_differences(name, backend, form):
+    """variations="all" and param_variations=True against central differences of full
+    integrations (common practice; helpers and tolerance 1e-4 of tests/test_carry_api.py)
+    on the inverse strategies test_carry_api does not reach: Kerr-Schild's rank-one form
+    (with a state stopped by the horizon event, whose expression depends on M and a) and a
+    numeric solve (dense4)."""
+    from tests.test_carry_api import assert_close_rows, fd_initial, fd_param
+    k = kernels(name, backend)
+    y0, lam_end = _strategy_case(name)
+    if form == "hamilton":
+        y0 = k.momenta(y0)
+    res = k.integrate(y0, lam_end, form=form, variations="all", param_variations=True,
+                      rtol=1e-11, atol=1e-13)
+    fd, base = fd_initial(k, y0, lam_end, form)
+    assert list(res.status) == list(base.status)
+    if name == "kerr_schild":
+        assert list(res.status) == ["horizon", "done"], res.status
+    assert_close_rows(res.variations, fd)
+    for p in k.parameters:
+        assert_close_rows(res.param_variations[p], fd_param(k, y0, lam_end, p, form))

@@ -296,6 +296,8 @@ def manifest_of(result) -> dict:
         "invariants": list(ks.invariants),
         "groups": list(ks.groups),
         "nan_where": list(ks.nan_where),
+        "periodic": list(ks.periodic),
+        "periods": {c: value for c, value, _ in ks.periods},
         "signature": list(ks.signature),
         "inverse_strategy": ks.inverse_strategy,
         "inverse_blocks": list(ks.inverse_blocks),

@@ -206,6 +206,11 @@ def c_header(ks: KernelSet, env=None) -> str:
         f"#define {P}_NEVENTS {len(ks.events)}"]
     for i, ev in enumerate(ks.events):
         constants.append(f"#define {P}_EVENT_{ev} {i}")
+    if ks.periods:
+        constants += ["", "/* Periodic coordinates: their periods at the default parameters "
+                      f"(the {ks.name}_periods kernel gives them for others). */"]
+    for c, value, text in ks.periods:
+        constants.append(f"#define {P}_PERIOD_{c} {value!r} /* {safe_comment(text)} */")
     params_doc = ", ".join(p for p, _ in ks.parameters) or "(none: pass NULL)"
     layout_doc = [
         f"/* Kernels of the metric \"{ks.name}\" in coordinates "
@@ -1061,4 +1066,5 @@ def numpy_module(ks: KernelSet, env=None) -> str:
         sha_repr=repr(ks.spec_sha256), coordinates_repr=repr(tuple(ks.coordinates)),
         parameters_repr=repr(tuple(p for p, _ in ks.parameters)),
         defaults_repr=repr(tuple(float(v) for _, v in ks.parameters)), dim=ks.dim,
+        periods_repr=repr({c: value for c, value, _ in ks.periods}),
         functions=functions)

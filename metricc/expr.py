@@ -339,17 +339,21 @@ _MATH = {"sin": math.sin, "cos": math.cos, "tan": math.tan, "asin": math.asin,
          "abs": abs}
 
 
-def constant_value(text: str) -> float:
+def constant_value(text: str, values: dict[str, float] | None = None) -> float:
     """The value of a constant expression in the spec language (``pi/2``, ``2*sqrt(2)``,
-    ``6.674e-11``): numbers, ``pi``, operators and functions, no other names. Evaluated in
-    floating point on the parsed tree; raises ExprError for a bad or non-finite value."""
+    ``6.674e-11``): numbers, ``pi``, operators and functions, and the names in ``values``
+    (name -> float, e.g. parameter defaults), no other names. Evaluated in floating point on
+    the parsed tree; raises ExprError for a bad or non-finite value."""
     tree = parse(text)
+    values = values or {}
 
     def leaf(n: Node) -> float:
         if n.kind == "num":
             return float(n.value)
         if n.value == "pi":
             return math.pi
+        if n.value in values:
+            return float(values[n.value])
         raise ExprError(f"unknown name {quoted(n.value)} (only numbers and pi here)", n.pos)
 
     def combine(n: Node, args: list[float]) -> float:

@@ -21,6 +21,7 @@ from dataclasses import dataclass, field, replace
 import sympy as sp
 
 from .geometry import Geometry, numeric_solve_cost
+from .periods import period_table, periods_kernel
 from .printing import as_expr, count_ops, is_library_call, library_calls
 
 
@@ -117,6 +118,14 @@ class KernelSet:
     invariants: tuple[str, ...] = ()
     groups: tuple[str, ...] = ()
     nan_where: tuple[str, ...] = ()    # see vanishing_radicands
+    # (coordinate, period at the defaults, expression) per periodic coordinate, in
+    # coordinate order (metricc.periods.period_table)
+    periods: tuple[tuple[str, float, str], ...] = ()
+
+    @property
+    def periodic(self) -> tuple[str, ...]:
+        """The periodic coordinates, in coordinate order."""
+        return tuple(c for c, _, _ in self.periods)
 
     @property
     def dim(self) -> int:
@@ -251,6 +260,8 @@ def build_kernels(geo: Geometry, extra: tuple[str, ...] = ()) -> KernelSet:
         stops = [e for _, e in geo.events] + [e for _, e in geo.domain]
         kernels.append(_make("stops", "the events, then the domain expressions", "x", x,
                              (len(stops),), stops, []))
+    if spec.periods:
+        kernels.append(periods_kernel(geo, _make))
     # tangent, transport, parameter-derivative and stop-gradient kernels: forward mode on
     # the kernels above (metricc.tangent)
     from .tangent import carry_kernels
@@ -262,6 +273,7 @@ def build_kernels(geo: Geometry, extra: tuple[str, ...] = ()) -> KernelSet:
     return KernelSet(name=spec.name, summary=spec.summary, spec_sha256=spec.sha256,
                      invariants=tuple(n for n, _ in geo.invariants),
                      groups=tuple(sorted(groups)), nan_where=vanishing_radicands(geo),
+                     periods=period_table(spec),
                      coordinates=spec.coordinates, parameters=spec.parameters,
                      param_symbols=geo.params, kernels=tuple(kernels),
                      ignorable=tuple(spec.coordinates[k] for k in geo.ignorable),

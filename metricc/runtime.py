@@ -42,6 +42,8 @@ class MetricKernels:
         signature: (negative, positive) eigenvalue counts of the metric inside the domain.
         inverse_strategy: how g^{-1} is obtained: "symbolic", "numeric" or "mixed".
         spec_sha256: hash of the spec's canonical content.
+        periods: dict periodic coordinate -> its period at the default parameters (the
+            spec's [periods]; empty when none); period_values() for other parameters.
     """
 
     def __init__(self, entry: build.CacheEntry, backend: str, c_module, np_module):
@@ -65,6 +67,9 @@ class MetricKernels:
         self.inverse_strategy: str = m["inverse_strategy"]
         self.spec_sha256: str = m["spec_sha256"]
         self.kernel_info: dict = m["kernels"]
+        # in coordinate order ("periodic"; the manifest's JSON sorts the dict's keys)
+        self.periods: dict[str, float] = {c: float(m["periods"][c])
+                                          for c in m.get("periodic", ())}
 
     def __reduce__(self):
         # Pickled as the spec text: a Dask worker rebuilds (usually: loads from its own
@@ -340,6 +345,19 @@ class MetricKernels:
                                                 self._params(params, x.shape[:-1]).values()])
                             + (0,))
         return self._call("domain", x, params)
+
+    def period_values(self, params=None) -> dict:
+        """name -> period of each periodic coordinate for ``params`` (the ``periods``
+        kernel): floats for scalar parameters, arrays of the parameters' broadcast shape
+        otherwise. Empty dict for a spec without [periods]."""
+        if not self.periods:
+            return {}
+        given = self._params(params, ())
+        batch = np.broadcast_shapes(*[v.shape for v in given.values()])
+        out = self._call("periods", np.zeros(self.dim), params)
+        out = out.reshape(batch + (len(self.periods),))
+        return {c: (float(out[..., i]) if not batch else out[..., i])
+                for i, c in enumerate(self.periods)}
 
     def inside(self, x, params=None) -> np.ndarray:
         """True where every [domain] expression is > 0 (finite): (..., dim) -> (...) bool."""

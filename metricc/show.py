@@ -327,6 +327,13 @@ def render(geo: Geometry, parts: list[str], fmt: str = "text") -> str:
         lines.append(f"{spec.name}: {spec.summary}")
         lines.append(f"coordinates: {', '.join(spec.coordinates)}; parameters: "
                      f"{', '.join(n for n, _ in spec.parameters) or 'none'}")
+    if spec.periods:
+        # the period at the defaults beside its expression (the expression alone hides
+        # what a parameter-dependent period comes to)
+        from .periods import period_table
+        shown = "; ".join(f"{c} ~ {c} + {text} (= {value!r})"
+                          for c, value, text in period_table(spec))
+        lines.append(("% " if fmt == "latex" else "") + f"periodic: {shown}")
     if defs:
         title = "helpers from [define], used below by name"
         if any(s not in hf.helper_order[:len(spec.defines)] for s, _ in defs):

@@ -24,7 +24,7 @@ MAX_SPEC_BYTES = 1_000_000
 
 TOP_LEVEL_KEYS = ("name", "summary", "coordinates", "signature", "parameters", "define",
                   "metric", "line_element", "domain", "events", "invariants", "kernels",
-                  "sampling")
+                  "sampling", "periods")
 # Kernel groups generated only on request (they cost build time and code size).
 OPTIONAL_KERNELS = ("curvature", "jacobian")
 
@@ -92,6 +92,9 @@ class Spec:
     # (coordinate, low, high) in file order: where the numerical checks of the build and
     # ``metricc verify`` draw that coordinate (not a limit on integrations)
     sampling: tuple[tuple[str, float, float], ...] = ()
+    # (coordinate, period) in file order: the coordinate is periodic with that period, an
+    # expression in numbers, pi and the parameters (positive and finite at the defaults)
+    periods: tuple[tuple[str, Expression], ...] = ()
 
     @property
     def dim(self) -> int:
@@ -208,6 +211,7 @@ class _Validator:
         invariants = self.labelled_table("invariants", known | state_names, coordinates)
         kernels = self.kernel_groups()
         sampling = self.sampling(coordinates)
+        periods = self.periods(coordinates, parameters)
         canonical = json.dumps({
             "name": name, "summary": summary, "coordinates": list(coordinates),
             "signature": signature,
@@ -222,12 +226,13 @@ class _Validator:
             # only when given, so specs without it keep their hashes
             **({"sampling": [[c, repr(lo), repr(hi)] for c, lo, hi in sampling]}
                if sampling else {}),
+            **({"periods": [[c, e.text] for c, e in periods]} if periods else {}),
         }, sort_keys=True, separators=(",", ":"), ensure_ascii=True)
         return Spec(path=self.path, name=name, summary=summary, coordinates=coordinates,
                     signature=signature, parameters=parameters, defines=defines,
                     metric=metric, line_element=line_element, domain=domain, events=events,
                     invariants=invariants, kernels=kernels, source=self.text,
-                    canonical=canonical, sampling=sampling,
+                    canonical=canonical, sampling=sampling, periods=periods,
                     sha256=hashlib.sha256(canonical.encode()).hexdigest())
 
     # -- top-level keys ------------------------------------------------------------------
@@ -402,10 +407,7 @@ class _Validator:
                             "e.g. r = [2.5, 50]", None, "sampling")
         out = []
         for cname, span in value.items():
-            if cname not in coords:
-                near = ex.closest(cname, coords) if len(cname) <= MAX_NAME_LENGTH else None
-                raise self.fail("not a coordinate" + (f" (did you mean {near!r}?)" if near else
-                                f"; coordinates are {', '.join(coords)}"), "sampling", cname)
+            self.check_coordinate_key(cname, coords, "sampling")
             if not (isinstance(span, list) and len(span) == 2 and all(
                     isinstance(v, (int, float)) and not isinstance(v, bool) for v in span)):
                 raise self.fail("must be [low, high], two numbers", "sampling", cname)
@@ -416,7 +418,45 @@ class _Validator:
             out.append((cname, lo, hi))
         return tuple(out)
 
+    def periods(self, coords, parameters) -> tuple[tuple[str, Expression], ...]:
+        """[periods]: coordinate = "period", an expression in numbers, pi and parameters."""
+        value = self.data.get("periods", {})
+        if not isinstance(value, dict):
+            raise self.fail("must be a table: write [periods] and one line per periodic "
+                            "coordinate, e.g. phi = \"2*pi\"", None, "periods")
+        defaults = dict(parameters)
+        out = []
+        for cname, text in value.items():
+            self.check_coordinate_key(cname, coords, "periods")
+            e = self.expression("periods", cname, text)
+            for used, pos in ex.names(e.tree):
+                if used in coords:
+                    raise self.fail(f"a period cannot depend on the coordinate {quoted(used)}; "
+                                    "use numbers, pi and parameters", "periods", cname, pos)
+                if used not in defaults and used not in ex.CONSTANTS:
+                    near = ex.closest(used, set(defaults) | set(ex.CONSTANTS))
+                    raise self.fail(f"unknown name {quoted(used)} (a period may use numbers, pi "
+                                    "and parameters" + (f"; did you mean {near!r}?)" if near
+                                                        else ")"), "periods", cname, pos)
+            try:
+                period = ex.constant_value(e.text, defaults)
+            except ex.ExprError as exc:
+                raise self.fail(f"cannot evaluate the period at the default parameters: "
+                                f"{exc.message}", "periods", cname) from None
+            if not period > 0:
+                raise self.fail(f"a period must be positive; it is {period!r} at the default "
+                                "parameters", "periods", cname)
+            out.append((cname, e))
+        return tuple(out)
+
     # -- helpers -------------------------------------------------------------------------
+    def check_coordinate_key(self, name: str, coords, table: str) -> None:
+        """A key of a per-coordinate table ([sampling], [periods]) must be a coordinate."""
+        if name not in coords:
+            near = ex.closest(name, coords) if len(name) <= MAX_NAME_LENGTH else None
+            raise self.fail("not a coordinate" + (f" (did you mean {near!r}?)" if near else
+                            f"; coordinates are {', '.join(coords)}"), table, name)
+
     def table(self, name: str) -> dict:
         value = self.data.get(name, {})
         if not isinstance(value, dict):

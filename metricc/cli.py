@@ -1,4 +1,4 @@
-"""Command line: ``metricc build | show | verify | integrate | render``.
+"""Command line: ``metricc build | show | verify | integrate | render | connect``.
 
 User mistakes (a bad spec, an unwritable folder) print one line and exit with status 1; only
 bugs in metricc itself show a traceback.
@@ -80,8 +80,9 @@ def _parser() -> argparse.ArgumentParser:
                    help="seed of the random sample points and velocities, for reproducible "
                         "runs (default 1)")
 
-    from . import render
+    from . import cli_connect, render
     render.add_parser(sub)
+    cli_connect.add_parser(sub)
 
     g = sub.add_parser("integrate", help="integrate a batch of geodesics from a file of states")
     g.add_argument("spec", metavar="SPEC", help="spec file (.toml)")
@@ -350,12 +351,11 @@ def _check_carried(path: str, k, y0, carried: dict) -> None:
                              f"shape {y0.shape} it must be {want}")
 
 
-def cmd_integrate(args) -> int:
-    import numpy as np
-    from . import load
+def parse_params(items) -> dict:
+    """--param NAME=VALUE items -> {name: float}; BuildError for a malformed one."""
     from .expr import ExprError, constant_value
     params = {}
-    for item in args.param:
+    for item in items:
         name, sep, value = item.partition("=")
         try:
             params[name.strip()] = constant_value(value)
@@ -364,6 +364,28 @@ def cmd_integrate(args) -> int:
         if not sep:
             raise BuildError(f"--param expects NAME=VALUE with a number (pi/2 and the like "
                              f"work), got {item!r}")
+    return params
+
+
+def write_npz(out: Path, arrays: dict) -> None:
+    """The arrays as one .npz archive, written atomically (temp file + rename)."""
+    import io
+
+    import numpy as np
+
+    from .build import atomic_write
+    buf = io.BytesIO()
+    np.savez(buf, **arrays)
+    try:
+        atomic_write(out, buf.getvalue())
+    except OSError as exc:
+        raise BuildError(f"cannot write {out}: {exc.strerror or exc}") from None
+
+
+def cmd_integrate(args) -> int:
+    import numpy as np
+    from . import load
+    params = parse_params(args.param)
     out = Path(args.output)
     if out.suffix.lower() != ".npz":
         # np.savez writes an .npz archive whatever the name says; a name like r.txt would
@@ -405,14 +427,7 @@ def cmd_integrate(args) -> int:
     if res.samples is not None:
         arrays["samples"] = res.samples
         arrays["sample_lam"] = samples
-    import io
-    buf = io.BytesIO()
-    np.savez(buf, **arrays)
-    from .build import atomic_write
-    try:
-        atomic_write(out, buf.getvalue())
-    except OSError as exc:
-        raise BuildError(f"cannot write {out}: {exc.strerror or exc}") from None
+    write_npz(out, arrays)
     # a single state (input shape (2*dim,)) gives 0-d results: count them as one
     names, counts = np.unique(np.atleast_1d(res.status), return_counts=True)
     drift = np.atleast_1d(res.drift)
@@ -496,6 +511,9 @@ def main(argv=None) -> int:
         if args.command == "render":
             from . import render
             return render.run(args)
+        if args.command == "connect":
+            from . import cli_connect
+            return cli_connect.run(args)
     except (SpecError, BuildError) as exc:
         print(str(exc).splitlines()[0] if isinstance(exc, SpecError) else f"metricc: error: {exc}",
               file=sys.stderr)

@@ -553,6 +553,23 @@ class MetricKernels:
             steps=steps.astype(np.int64).reshape(lead), samples=samp,
             drift=drift.reshape(lead), status_code=codes.reshape(lead), **extra)
 
+    def connect(self, x_from, x_to, params=None, kind=None, free=None, solutions=1,
+                rtol=1e-11, atol=1e-13, tol=1e-10, max_iter=50, progress=None):
+        """The geodesic joining x_from to x_to (..., dim), by damped Newton shooting on u0
+        (affine parameter 0 at x_from, 1 on arrival); see metricc.connect.
+
+        free: coordinate names left free on arrival (one, with kind="null" or "timelike",
+        which adds g(u0,u0) = 0 or -1; x_to's value of it only gives the direction: earlier
+        than x_from's means past-directed). Periodic coordinates arrive modulo their period.
+        Riemannian specs: the shortest geodesic found. solutions=n: up to n distinct ones,
+        by length (null with free: by the change of the free coordinate, then the angle
+        swept), on an axis before the last. Returns a Connection (y0, y1, length, status,
+        iterations, residual); one pair failing never raises for the batch."""
+        from .connect import connect
+        return connect(self, x_from, x_to, params=params, kind=kind, free=free,
+                       solutions=solutions, rtol=rtol, atol=atol, tol=tol, max_iter=max_iter,
+                       progress=progress)
+
     def _integrate_c(self, flat, lam_end, values, given, rtol, atol, max_steps, active, samples,
                      form, method, threads, progress, carry=None):
         """The compiled integrator on flat states (N, S): NAME_integrate_interruptible, or

@@ -274,7 +274,7 @@ class MetricKernels:
         count = int(np.prod(batch, dtype=np.int64))
         flat = np.ascontiguousarray(np.broadcast_to(arr, batch + (n_in,))).reshape(-1, n_in)
         dflat = np.ascontiguousarray(np.broadcast_to(dirs, batch + (m, d_in))).reshape(
-            -1, m, d_in)
+            count, m, d_in)
         values = [np.broadcast_to(given.get(p, np.float64(d)), batch).reshape(-1)
                   for p, d in self.parameters.items()]
         out = np.empty((count, m, n_out), dtype=np.float64)

@@ -682,6 +682,13 @@ def vector_math_block(ks: KernelSet) -> str:
 #else
 #define {P}_CLONES
 #endif
+/* The tangent and transport kernels' tiles: AVX2 and baseline only (a third, AVX-512
+ * version of these wide functions would add as much compile time as all core kernels). */
+#if defined(__GNUC__) && !defined(__clang__) && defined(__x86_64__) && defined(__linux__) && !defined(__CUDACC__) && !defined({P}_NO_CLONES)
+#define {P}_CARRY_CLONES __attribute__((target_clones("avx2", "default")))
+#else
+#define {P}_CARRY_CLONES
+#endif
 #if defined({P}_VECTOR_MATH) && defined(__GNUC__) && defined(__x86_64__) && !defined(__CUDACC__) && !defined(__clang__)
 #define {P}_VECTOR_CLONES {P}_CLONES
 {simd} double sin(double);
@@ -737,9 +744,10 @@ def c_source(ks: KernelSet, env=None, preamble: str = "") -> str:
                           {"prototype": batch, "body": _c_directional_batch(ks, k)}]
             if _tiled_directional(k):
                 sk = _shared_kernel(k)
-                functions.append({"prototype": tile_prototype(ks, sk),
+                functions.append({"prototype": tile_prototype(ks, sk).replace(
+                    f"{P}_CLONES", f"{P}_CARRY_CLONES"),
                                   "body": _tile_body(ks, sk, direct=True)})
-                soa = f"{P}_CLONES " + soa
+                soa = f"{P}_CARRY_CLONES " + soa
             functions.append({"prototype": soa, "body": _c_directional_soa(ks, k)})
             continue
         functions.append({"prototype": single, "body": _c_body(ks, k)})

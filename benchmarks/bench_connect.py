@@ -1,0 +1,151 @@
+"""Connecting two points: k.connect against the shooting code a user would otherwise write.
+
+    python benchmarks/bench_connect.py [--quick] [--pairs N] [--scipy-pairs M] [--backend c]
+
+WGS84 (specs/ellipsoid.toml, latitude/longitude in radians, metres): N random pairs (10^4;
+1000 with --quick) go through one ``k.connect`` call. The baseline is the general-purpose path:
+for each pair, ``scipy.optimize.root`` (hybr, finite-difference Jacobian) on u0, each residual
+one ``scipy.integrate.solve_ivp`` (DOP853) of the generated NumPy right-hand side
+(``k.ivp_rhs()`` of the NumPy backend) from lambda = 0 to 1, started from the coordinate
+difference (longitude wrapped into (-pi, pi]); same rtol/atol as k.connect. The baseline is
+timed on the first M pairs (50; 10 with --quick) and its time scaled to N: a full run would
+take hours. Both are checked against geographiclib's Geodesic.WGS84.Inverse (Karney 2013): the
+table gives the largest distance error of each and how many pairs are within 0.1 mm (the
+connect path over all N pairs).
+
+Pairs are drawn with |lat| <= 70 degrees and kept only when the geodesic line stays below 80
+degrees of reduced latitude (Clairaut: cos(beta) sin(alpha) is constant, with alpha from
+geographiclib), because the shipped chart excludes the poles (cos(lat) > 0). Wall-clock
+times, one run; the machine is shared, so compare the ratio, not absolute figures.
+"""
+from __future__ import annotations
+
+import argparse
+import os
+import platform
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+from runinfo import cpu_model, load_average, tree_state
+
+ROOT = Path(__file__).resolve().parent.parent
+if str(ROOT) not in sys.path:
+    sys.path.insert(0, str(ROOT))
+
+import metricc  # noqa: E402
+
+# tolerances of both paths: 0.1 mm at 20,000 km needs the arrival to 5e-12 of the length
+RTOL, ATOL, TOL = 1e-13, 1e-15, 1e-12
+F = 1 / 298.257223563
+VERTEX_MAX_DEG = 80.0
+GOAL = 1000.0
+DIST_TOL_M = 1e-4
+
+
+def wrap(d):
+    return (d + np.pi) % (2 * np.pi) - np.pi
+
+
+def draw_pairs(n: int, seed: int):
+    """(pairs (n, 2, 2) in radians, geographiclib s12 (n,)), off-pole geodesics only."""
+    from geographiclib.geodesic import Geodesic
+    g = Geodesic.WGS84
+    rng = np.random.default_rng(seed)
+    pairs, s12 = [], []
+    while len(pairs) < n:
+        lat1, lat2 = rng.uniform(-70, 70, 2)
+        lon1, lon2 = rng.uniform(-180, 180, 2)
+        r = g.Inverse(lat1, lon1, lat2, lon2)
+        beta1 = np.arctan((1 - F) * np.tan(np.radians(lat1)))
+        vertex = np.degrees(np.arccos(abs(np.cos(beta1) * np.sin(np.radians(r["azi1"])))))
+        if vertex < VERTEX_MAX_DEG:
+            pairs.append(np.radians([[lat1, lon1], [lat2, lon2]]))
+            s12.append(r["s12"])
+    return np.array(pairs), np.array(s12)
+
+
+def scipy_path(k_np, pairs):
+    """Shooting with solve_ivp inside optimize.root, one pair at a time: (lengths, seconds,
+    right-hand-side calls)."""
+    from scipy.integrate import solve_ivp
+    from scipy.optimize import root
+    fun = k_np.ivp_rhs()
+    calls = 0
+    lengths = np.full(len(pairs), np.nan)
+
+    def arrival(x0, u):
+        nonlocal calls
+        sol = solve_ivp(fun, (0.0, 1.0), np.concatenate([x0, u]), method="DOP853",
+                        rtol=RTOL, atol=ATOL)
+        calls += sol.nfev
+        return sol.y[:2, -1]
+
+    t0 = time.perf_counter()
+    for i, (x0, x1) in enumerate(pairs):
+        def mismatch(u):
+            d = arrival(x0, u) - x1
+            d[1] = wrap(d[1])
+            return d
+        guess = np.array([x1[0] - x0[0], wrap(x1[1] - x0[1])])
+        r = root(mismatch, guess, method="hybr", options={"xtol": TOL})
+        if r.success:
+            y0 = np.concatenate([x0, r.x])
+            lengths[i] = np.sqrt(k_np.norm(y0))
+    return lengths, time.perf_counter() - t0, calls
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    ap.add_argument("--quick", action="store_true", help="1000 pairs, baseline on 10")
+    ap.add_argument("--pairs", type=int, default=None, help="pairs through k.connect")
+    ap.add_argument("--scipy-pairs", type=int, default=None,
+                    help="pairs through the scipy path (timed, then scaled)")
+    ap.add_argument("--backend", default="c", choices=("c", "numpy"))
+    ap.add_argument("--seed", type=int, default=1)
+    args = ap.parse_args()
+    n = args.pairs or (1000 if args.quick else 10_000)
+    m = min(n, args.scipy_pairs or (10 if args.quick else 50))
+    print("command: python " + " ".join([sys.argv[0]] + sys.argv[1:]))
+    print(f"python {platform.python_version()}, numpy {np.__version__}, {cpu_model()}, "
+          f"{os.cpu_count()} CPUs, load {load_average()}, checkout {tree_state()}")
+    spec = ROOT / "specs" / "ellipsoid.toml"
+    k = metricc.load(spec, backend=args.backend)
+    k_np = metricc.load(spec, backend="numpy")
+    pairs, s12 = draw_pairs(n, args.seed)
+    print(f"WGS84: {n} random pairs (|lat| <= 70 deg, geodesic vertex < {VERTEX_MAX_DEG:g} "
+          f"deg), rtol {RTOL:g}, atol {ATOL:g}, connect tol {TOL:g}")
+
+    t0 = time.perf_counter()
+    sol = k.connect(pairs[:, 0], pairs[:, 1], rtol=RTOL, atol=ATOL, tol=TOL)
+    t_connect = time.perf_counter() - t0
+    err = np.abs(sol.length - s12)
+    ok = (sol.status == "converged") & (err <= DIST_TOL_M)
+
+    lengths, t_scipy, calls = scipy_path(k_np, pairs[:m])
+    err_s = np.abs(lengths - s12[:m])
+    ok_s = err_s <= DIST_TOL_M
+    rate_c = n / t_connect
+    rate_s = m / t_scipy
+    print(f"\n{'path':<44} {'pairs':>6} {'seconds':>9} {'pairs/s':>10} {'max err m':>10} "
+          f"{'<= 0.1 mm':>10}")
+    print(f"{'k.connect (' + k.backend + ' backend, one call)':<44} {n:>6} {t_connect:9.2f} "
+          f"{rate_c:10.1f} {np.nanmax(err):10.2e} {int(ok.sum()):>6}/{n}")
+    print(f"{'solve_ivp DOP853 in optimize.root (NumPy RHS)':<44} {m:>6} {t_scipy:9.2f} "
+          f"{rate_s:10.3f} {np.nanmax(err_s):10.2e} {int(ok_s.sum()):>6}/{m}")
+    print(f"\nscipy path scaled to {n} pairs: {t_scipy / m * n:.0f} s (timed on the first {m} "
+          f"pairs; {calls / m:.0f} right-hand-side calls per pair)")
+    print(f"throughput ratio k.connect / scipy: {rate_c / rate_s:.0f}x (goal {GOAL:g}x: "
+          f"{'met' if rate_c / rate_s >= GOAL else 'NOT met'})")
+    statuses = ", ".join(f"{c} {s}" for s, c in zip(*np.unique(sol.status, return_counts=True)))
+    print(f"k.connect statuses: {statuses}; distances within 0.1 mm of geographiclib: "
+          f"{int(ok.sum())}/{n}" + ("" if ok.all() else " (NOT all)"))
+    if not ok.all():
+        bad = np.flatnonzero(~ok)[:5]
+        print("first pairs outside 0.1 mm (index, error m, status): "
+              + ", ".join(f"({i}, {err[i]:.3g}, {sol.status[i]})" for i in bad))
+
+
+if __name__ == "__main__":
+    main()

@@ -95,9 +95,10 @@ def check_against_geographiclib(k, rows):
     assert dist_err.max() < DIST_TOL_M, (dist_err.max(), np.argmax(dist_err))
     assert azi1_err.max() < AZI_TOL_RAD, azi1_err.max()
     assert azi2_err.max() < AZI_TOL_RAD, azi2_err.max()
-    # the arrival point is the target (longitude modulo 2 pi)
-    np.testing.assert_allclose(sol.y1[:, 0], b[:, 0], atol=1e-12)
-    assert np.abs(wrapped(sol.y1[:, 1] - b[:, 1])).max() < 1e-12
+    # the arrival point is the target (longitude modulo 2 pi), to 1e-11 rad (64 um): tol
+    # bounds the mismatch relative to the length, 1e-12 of up to 2e7 m
+    assert np.abs(sol.y1[:, 0] - b[:, 0]).max() < 1e-11
+    assert np.abs(wrapped(sol.y1[:, 1] - b[:, 1])).max() < 1e-11
 
 
 @pytest.fixture(scope="module")

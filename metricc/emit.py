@@ -161,6 +161,8 @@ def cdef_text(ks: KernelSet) -> str:
     lines.append(emit_integrator.options_struct(ks))
     lines.append(emit_integrator.integrate_prototype(ks, "restrict") + ";")
     lines.append(emit_integrator.integrate_prototype(ks, "restrict", interruptible=True) + ";")
+    lines.append(emit_integrator.carry_struct(ks))
+    lines.append(emit_integrator.integrate_carry_prototype(ks, "restrict") + ";")
     return "\n".join(lines) + "\n"
 
 
@@ -267,6 +269,24 @@ def c_header(ks: KernelSet, env=None) -> str:
                          "at y0, lambda = 0). */",
                   "prototype": emit_integrator.integrate_prototype(ks, f"{P}_RESTRICT",
                                                                    interruptible=True)})
+    S, D = 2 * ks.dim, ks.dim
+    decls.append({"doc": f"/* Quantities {ks.name}_integrate_carry carries along each state. */\n"
+                         + emit_integrator.carry_struct(ks) + "\n"
+                         f"/* {ks.name}_integrate_interruptible that also carries, per state, "
+                         f"nc = n_transport*{D} + (n_variations + n_param)*{S}\n"
+                         f" * components: [transport vectors (n_transport x {D}; form hamilton: "
+                         "covariant)][variation directions\n"
+                         f" * (n_variations x {S}): J(y) d][parameter columns (n_param x {S}): "
+                         "J(y) d + d f / d param]. c0[n][nc]\n"
+                         " * in, c_out[n][nc] (the values where the state stopped, at the "
+                         "crossing for an event) and\n"
+                         " * c_samples_out[n][n_samples][nc] (NaN where not reached) out; either "
+                         "output may be NULL. carry NULL\n"
+                         f" * (or all counts 0): exactly {ks.name}_integrate_interruptible. "
+                         "Invalid carry options (negative\n"
+                         " * counts, param_index out of range, c0 NULL, over 2^20 components): "
+                         "every state BAD_INPUT. */",
+                  "prototype": emit_integrator.integrate_carry_prototype(ks, f"{P}_RESTRICT")})
     return env.get_template("c_header.h.j2").render(
         banner=_c_banner(ks), guard=f"METRICC_{P}_H", prefix_upper=P, constants=constants,
         layout_doc=layout_doc, declarations=decls)

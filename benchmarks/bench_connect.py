@@ -109,7 +109,7 @@ def main() -> None:
     m = min(n, args.scipy_pairs or (10 if args.quick else 50))
     print("command: python " + " ".join([sys.argv[0]] + sys.argv[1:]))
     print(f"python {platform.python_version()}, numpy {np.__version__}, {cpu_model()}, "
-          f"{os.cpu_count()} CPUs, load {load_average()}, checkout {tree_state()}")
+          f"{os.cpu_count()} CPUs, {load_average()} at start, checkout {tree_state()}")
     spec = ROOT / "specs" / "ellipsoid.toml"
     k = metricc.load(spec, backend=args.backend)
     k_np = metricc.load(spec, backend="numpy")

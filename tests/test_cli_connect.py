@@ -152,3 +152,23 @@ def test_batch_arguments(tmp_path, capsys):
     code, _, err = run(capsys, SPHERE, "-i", src, "-o", tmp_path / "r.npz", "--kind",
                        "timelike", "--free", "phi")
     assert code == 1 and not (tmp_path / "r.npz").exists()
+
+
+def test_two_solutions_are_the_short_and_the_long_arc(tmp_path, capsys):
+    # the second geodesic joining two points of a sphere is the rest of the great circle:
+    # length 2 pi - angle (closed form)
+    a, b = np.array([1.0, 0.2]), np.array([2.0, 1.5])
+    angle = float(central_angle(a, b))
+    code, out, err = run(capsys, SPHERE, "--from", "1.0,0.2", "--to", "2.0,1.5",
+                         "--solutions", "2")
+    assert code == 0, err
+    assert "solution 1: converged" in out and "solution 2: converged" in out
+    lengths = [float(l.split()[-1]) for l in out.splitlines() if l.strip().startswith("length")]
+    assert lengths == pytest.approx([angle, 2 * np.pi - angle], rel=1e-10)
+    src, out_path = tmp_path / "pairs.npy", tmp_path / "res.npz"
+    np.save(src, np.array([[a, b]] * 3))
+    code, out, err = run(capsys, SPHERE, "-i", src, "-o", out_path, "--solutions", "2")
+    assert code == 0, err
+    with np.load(out_path) as z:
+        assert z["y0"].shape == (3, 2, 4) and z["status"].shape == (3, 2)
+        np.testing.assert_allclose(z["length"], [[angle, 2 * np.pi - angle]] * 3, rtol=1e-10)

@@ -293,7 +293,7 @@ def test_dask_path_equals_the_plain_path():
     y0 = np.repeat(kerr_states(k), 2, axis=0)
     vt = np.random.default_rng(2).normal(size=(4, 1, 4))
     vv = np.random.default_rng(3).normal(size=(4, 2, 8))
-    kw = {"samples": [1.0, 5.0], "param_variations": ["a"]}
+    kw = {"samples": [1.0, 5.0], "param_variations": ["a"], "rtol": 1e-8}
     ref = k.integrate(y0, 12.0, transport=vt, variations=vv, **kw)
     lazy = k.integrate(da.from_array(y0, chunks=(1, 8)), 12.0, transport=vt,
                        variations=da.from_array(vv, chunks=(2, 2, 8)), **kw)
@@ -306,9 +306,9 @@ def test_dask_path_equals_the_plain_path():
             ref.variations_samples, ref.param_variations["a"])
     for g, w in zip(got, want):
         np.testing.assert_array_equal(g, w)
-    every = k.integrate(da.from_array(y0, chunks=(3, 8)), 12.0, variations="all")
+    every = k.integrate(da.from_array(y0, chunks=(3, 8)), 12.0, variations="all", rtol=1e-8)
     np.testing.assert_array_equal(every.variations.compute(scheduler="synchronous"),
-                                  k.integrate(y0, 12.0, variations="all").variations)
+                                  k.integrate(y0, 12.0, variations="all", rtol=1e-8).variations)
 
 
 class _InlineClient:
@@ -328,22 +328,24 @@ def test_map_integrate_splits_carried_arrays_with_the_states():
     y0 = np.concatenate([kerr_states(k), kerr_states(k)[::-1]]).reshape(2, 2, 8)
     rng = np.random.default_rng(4)
     vt, vv = rng.normal(size=(2, 2, 1, 4)), rng.normal(size=(2, 2, 2, 8))
-    kw = {"transport": vt, "variations": vv, "param_variations": ["a"], "samples": [3.0]}
+    kw = {"transport": vt, "variations": vv, "param_variations": ["a"], "samples": [3.0],
+          "rtol": 1e-8}
     ref = k.integrate(y0, 12.0, **kw)
     res = map_integrate(_InlineClient(), k, y0, 12.0, chunk_size=3, **kw)
     for f in ("y", "transport", "transport_samples", "variations", "variations_samples"):
         np.testing.assert_array_equal(getattr(res, f), getattr(ref, f), err_msg=f)
     np.testing.assert_array_equal(res.param_variations["a"], ref.param_variations["a"])
-    every = map_integrate(_InlineClient(), k, y0, 12.0, chunk_size=3, variations="all")
+    every = map_integrate(_InlineClient(), k, y0, 12.0, chunk_size=3, variations="all",
+                          rtol=1e-8)
     np.testing.assert_array_equal(every.variations,
-                                  k.integrate(y0, 12.0, variations="all").variations)
+                                  k.integrate(y0, 12.0, variations="all", rtol=1e-8).variations)
 
 
 # -- command line ----------------------------------------------------------------------------
 def _cli(args):
     from metricc.cli import main
     return main(["integrate", str(SPECS / "kerr.toml"), "--backend", "numpy", "--lam-end",
-                 "12"] + [str(a) for a in args])
+                 "12", "--rtol", "1e-8"] + [str(a) for a in args])
 
 
 def test_cli_round_trip_with_carried_vectors(tmp_path):
@@ -355,7 +357,7 @@ def test_cli_round_trip_with_carried_vectors(tmp_path):
     assert _cli(["-i", tmp_path / "in.npz", "-o", tmp_path / "out.npz", "--samples", "3",
                  "--param-variations", "M,a"]) == 0
     ref = k.integrate(y0, 12.0, transport=vt, variations=vv, param_variations=["M", "a"],
-                      samples=np.linspace(0, 12, 3))
+                      samples=np.linspace(0, 12, 3), rtol=1e-8)
     with np.load(tmp_path / "out.npz") as out:
         for key in ("y", "transport", "transport_samples", "variations",
                     "variations_samples"):
@@ -366,7 +368,7 @@ def test_cli_round_trip_with_carried_vectors(tmp_path):
     np.savez(tmp_path / "states.npz", y0=y0)
     assert _cli(["-i", tmp_path / "states.npz", "-o", tmp_path / "all.npz", "--variations",
                  "all", "--param-variations", "all"]) == 0
-    ref = k.integrate(y0, 12.0, variations="all", param_variations=True)
+    ref = k.integrate(y0, 12.0, variations="all", param_variations=True, rtol=1e-8)
     with np.load(tmp_path / "all.npz") as out:
         np.testing.assert_array_equal(out["variations"], ref.variations)
         assert out["variations"].shape == (2, 8, 8)

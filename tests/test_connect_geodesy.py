@@ -118,8 +118,16 @@ def test_nearly_antipodal_pairs_against_geographiclib(ellipsoid):
 
 
 def test_the_domain_rule_keeps_pairs_off_the_poles():
-    # Clairaut's vertex against geographiclib's own sampled line: the highest latitude
-    # reached on the arc stays below the bound
+    # Clairaut's vertex against geographiclib's own geodesic lines: the highest reduced
+    # latitude over a whole circuit (sampled every 10 km) matches the formula, so the arc
+    # between the points of a kept pair stays below VERTEX_MAX_DEG too
+    rng = np.random.default_rng(7)
+    for _ in range(10):
+        lat1, azi1 = rng.uniform(-70, 70), rng.uniform(-180, 180)
+        line = WGS84.Line(lat1, 0.0, azi1)
+        lats = np.array([line.Position(s)["lat2"] for s in np.arange(0, 40_100e3, 10e3)])
+        beta = np.degrees(np.arctan((1 - F) * np.tan(np.radians(np.abs(lats)))))
+        assert beta.max() == pytest.approx(vertex_deg(lat1, azi1), abs=1e-3)
     rows = reference_pairs(np.random.default_rng(7), 10, random_draw)
     for lat1, lon1, lat2, lon2, s12, _, _ in rows:
         line = WGS84.InverseLine(lat1, lon1, lat2, lon2)

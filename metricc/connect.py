@@ -30,6 +30,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .integrate import DOMAIN, EVENT_BASE
+
 STATUS_WORDS = ("converged", "no_convergence", "stopped", "outside_domain", "not_found",
                 "bad_input", "wrong_kind")
 STEP_MAX = 1.0        # Newton step at most this times |u0| (|g| norm at x_from)
@@ -41,6 +43,8 @@ FAN_SAMPLES = 64      # samples along each fan ray (closest approach, parabola r
 FAN_REACH = 1.5       # fan rays run FAN_REACH * (coordinate distance + periods) far
 ZOOM_SHRINK = 0.5     # cone half-width factor per zoom level
 ZOOM_MIN = 1e-4       # smallest cone half-width (radians of direction)
+ZOOM_DONE = 1e-3      # a pair stops zooming once it has as many seeds as solutions asked
+                      # for that pass within ZOOM_DONE * (their path length) of x_to
 FAN_MEMORY = 2 ** 23  # doubles of samples per integrate call of the fan
 
 
@@ -200,14 +204,15 @@ class _Problem:
 
 def _newton(prob: _Problem, idx, u, target, tol, max_iter, tick):
     """Damped Newton for M candidates. Returns u (M, dim), residual (M,), iterations (M,),
-    converged (M,) bool, finished (M,) bool (some integration reached lambda = 1)."""
+    converged (M,) bool, stopped (M,) bool (some trial integration ended on an event or a
+    [domain] boundary before lambda = 1: the candidate ran into a stop)."""
     M, dim = u.shape
     res = np.full(M, np.inf)
     F = np.zeros((M, dim))
     du = np.zeros((M, dim))
     alpha = np.ones(M)
     iters = np.zeros(M, dtype=np.int64)
-    finished = np.zeros(M, dtype=bool)
+    stopped = np.zeros(M, dtype=bool)
     alive = np.all(np.isfinite(u), axis=1)
     have = np.zeros(M, dtype=bool)          # an accepted point exists
     u_acc = u.copy()
@@ -221,7 +226,8 @@ def _newton(prob: _Problem, idx, u, target, tol, max_iter, tick):
         out = prob.integrate(idx[r], trial, variations=True)
         iters[r] += 1
         done = out.status == "done"
-        finished[r] |= done
+        code = out.status_code
+        stopped[r] |= (code == DOMAIN) | (code >= EVENT_BASE)
         Ft, rt, scale = prob.residual(idx[r], trial, out.y[:, :dim], target[r])
         rt = np.where(done, rt, np.inf)
         better = np.isfinite(rt) & (~have[r] | (rt <= tol) | (rt < (1 - 1e-4 * alpha[r]) * res[r]))
@@ -243,7 +249,7 @@ def _newton(prob: _Problem, idx, u, target, tol, max_iter, tick):
         alpha[b] *= 0.5
         alive[b[alpha[b] < ALPHA_MIN]] = False
         tick()
-    return u_acc, res, iters, have & (res <= tol), finished
+    return u_acc, res, iters, have & (res <= tol), stopped
 
 
 def _solve(J, rhs):
@@ -446,9 +452,10 @@ class _Fan:
             fmin = np.clip(f0 - 0.25 * (fm - fp) * shift, 0.0, f0)
         return j, shift, np.where(np.isfinite(f0) & np.isfinite(fmin), fmin, np.inf), samp
 
-    def seeds(self, K: int, tick):
+    def seeds(self, K: int, wanted: int, tick):
         """K candidates per pair: u0 (P, K, dim), targets (P, K, dim) (windings from the
-        closest approach), found (P, K) bool."""
+        closest approach), found (P, K) bool. A pair zooms until ``wanted`` seeds pass
+        within ZOOM_DONE of their path length of x_to, or the cone is ZOOM_MIN wide."""
         P = len(self.pidx)
         m = len(self.comps)
         pts, nb0, spacing = _sphere_points(m)
@@ -468,6 +475,11 @@ class _Fan:
             w = spacing
             while w > ZOOM_MIN:
                 cd, ce = pool[0], pool[1]                           # (P, K), (P, K, m)
+                close = cd <= ZOOM_DONE * pool[2] * self.reach[:, None]
+                done = np.sum(close, axis=1) >= wanted
+                if done.all():
+                    break
+                old = pool
                 # orthonormal tangent basis at each centre
                 A = np.concatenate([ce[..., None], np.broadcast_to(fill, ce.shape[:2] + (m, m - 1))],
                                    axis=-1)
@@ -476,7 +488,7 @@ class _Fan:
                 dirs = ce[:, :, None, :] + w * np.einsum("pkij,nj->pkni", T, grid)
                 dirs /= np.linalg.norm(dirs, axis=-1, keepdims=True)
                 npt = grid.shape[0]
-                live = np.isfinite(cd)
+                live = np.isfinite(cd) & ~done[:, None]
                 rows = np.flatnonzero(np.repeat(live.ravel(), npt))
                 dd = np.full(P * K * npt, np.inf)
                 ll = np.zeros(P * K * npt)
@@ -496,6 +508,8 @@ class _Fan:
                                dirs.reshape(P, K * npt, m), ll.reshape(P, K * npt),
                                xx.reshape(P, K * npt, -1), K, w * step,
                                first=own.reshape(P, K * npt))
+                pool = tuple(np.where(done.reshape((P,) + (1,) * (a.ndim - 1)), b, a)
+                             for a, b in zip(pool, old))
                 w *= ZOOM_SHRINK
                 tick()
         dist, e, lam, xc = pool
@@ -654,12 +668,12 @@ def _solve_pairs(prob: _Problem, n_sol: int, use_fan: bool, tol: float, max_iter
     u, target = _coordinate_guesses(prob, pidx)
     if use_fan:
         K = n_sol + 2
-        fu, ft, _ = _Fan(prob, pidx).seeds(K, tick)
+        fu, ft, _ = _Fan(prob, pidx).seeds(K, n_sol, tick)
         u = np.concatenate([u, fu], axis=1)
         target = np.concatenate([target, ft], axis=1)
     C = u.shape[1]
     idx = np.repeat(pidx, C)
-    u, res, it, conv, finished = _newton(prob, idx, u.reshape(-1, dim),
+    u, res, it, conv, stopped = _newton(prob, idx, u.reshape(-1, dim),
                                          target.reshape(-1, dim), tol, max_iter, tick)
     # verification: a plain integration from each converged u0 (the same steps Newton's
     # base state took), the arrival compared modulo the periods, normalisation, direction
@@ -736,9 +750,11 @@ def _solve_pairs(prob: _Problem, n_sol: int, use_fan: bool, tol: float, max_iter
     out_res[pi, slot] = vres[src]
     out_st[pi, slot] = "converged"
     none = ~kept.any(axis=1)
-    fin = finished.reshape(P, C).any(axis=1)
+    # every candidate ran into a stop (event, domain) before reaching x_to: "stopped"
+    ran = it.reshape(P, C) > 0                # candidates without a seed never ran
+    all_stopped = np.all(stopped.reshape(P, C) | ~ran, axis=1) & ran.any(axis=1)
     wk = wrong_kind.reshape(P, C).any(axis=1)
-    word = np.where(wk, "wrong_kind", np.where(fin, "no_convergence", "stopped"))
+    word = np.where(wk, "wrong_kind", np.where(all_stopped, "stopped", "no_convergence"))
     out_st[none] = word[none, None]
     # the best unconverged attempt's residual where nothing converged
     best = np.min(np.where(np.isfinite(res), res, np.inf).reshape(P, C), axis=1)

@@ -71,32 +71,27 @@ def kernel_table(k, n: int, repeats: int, min_time: float) -> None:
             base[layout], _ = best_time(lambda: fn(n, src, pp, 0, fp), repeats, min_time)
             print(f"{'kerr_' + form + '_rhs_' + layout:<38} {'':>2} "
                   f"{base[layout] / n * 1e9:9.2f} {1.0:7.2f}")
-        for m in (1, 2, 4, 8):
-            d = rng.normal(size=(n, m, 8))
+        def directional(kernel, m, width, goal):
+            # one kernel with m directions of `width` components, both layouts, f or NULL
+            d = rng.normal(size=(n, m, width))
             out = np.empty((n, m, 8))
             dp = ffi.from_buffer("double[]", np.ascontiguousarray(d))
             dsp = ffi.from_buffer("double[]", np.ascontiguousarray(d.transpose(1, 2, 0)))
             op = ffi.from_buffer("double[]", out)
             for layout, src, dirs in (("batch", yp, dp), ("soa", cp, dsp)):
-                fn = getattr(lib, f"kerr_{form}_tangent_{layout}")
+                fn = getattr(lib, f"kerr_{form}_{kernel}_{layout}")
                 for with_f in (True, False):
                     fo = fp if with_f else ffi.NULL
-                    t, _ = best_time(lambda: fn(n, src, m, dirs, pp, 0, fo, op), repeats, min_time)
-                    label = f"kerr_{form}_tangent_{layout}" + ("" if with_f else " (f=NULL)")
-                    goal = f"{1 + 1.5 * m:6.1f}" if with_f else ""
-                    print(f"{label:<38} {m:2d} {t / n * 1e9:9.2f} {t / base[layout]:7.2f} {goal:>6}")
-        v = rng.normal(size=(n, 2, 4))
-        tout = np.empty((n, 2, 4))
-        vp = ffi.from_buffer("double[]", np.ascontiguousarray(v))
-        vsp = ffi.from_buffer("double[]", np.ascontiguousarray(v.transpose(1, 2, 0)))
-        top = ffi.from_buffer("double[]", tout)
-        for layout, src, vecs in (("batch", yp, vp), ("soa", cp, vsp)):
-            fn = getattr(lib, f"kerr_{form}_transport_{layout}")
-            for with_f in (True, False):
-                fo = fp if with_f else ffi.NULL
-                t, _ = best_time(lambda: fn(n, src, 2, vecs, pp, 0, fo, top), repeats, min_time)
-                label = f"kerr_{form}_transport_{layout}" + ("" if with_f else " (f=NULL)")
-                print(f"{label:<38} {2:2d} {t / n * 1e9:9.2f} {t / base[layout]:7.2f}")
+                    t, _ = best_time(lambda: fn(n, src, m, dirs, pp, 0, fo, op), repeats,
+                                     min_time)
+                    label = f"kerr_{form}_{kernel}_{layout}" + ("" if with_f else " (f=NULL)")
+                    g = f"{goal:6.1f}" if with_f and goal else ""
+                    print(f"{label:<38} {m:2d} {t / n * 1e9:9.2f} {t / base[layout]:7.2f} "
+                          f"{g:>6}")
+
+        for m in (1, 2, 4, 8):
+            directional("tangent", m, 8, 1 + 1.5 * m)
+        directional("transport", 2, 4, None)
 
 
 def timed(fn, repeats: int):

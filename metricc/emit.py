@@ -1002,7 +1002,8 @@ def _np_directions(ks: KernelSet, k: Kernel) -> list[str]:
     d = k.direction_name
     n_out = len(k.direction_outputs)
     lines = [f"{d} = np.asarray({d}, dtype=np.float64)"]
-    lines += [f"{s.name} = np.expand_dims({s.name}, -1)" for s in _shared_for_directions(k)]
+    # a trailing axis for the directions (indexing: np.expand_dims costs a call per value)
+    lines += [f"{s.name} = {s.name}[..., None]" for s in _shared_for_directions(k)]
     used = symbols_read(k.direction_steps, k.direction_outputs)
     lines += [f"{s.name} = {d}[..., {i}]" for i, s in enumerate(k.direction_symbols)
               if s in used]

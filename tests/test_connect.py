@@ -18,12 +18,13 @@
 - Points that cannot be connected end with a clear status, never "converged", never an
   exception for the batch.
 
-Mutation checks (each made by hand in metricc/connect.py, the test run, then reverted):
-no windings (_windings returns only the unwound row and the fan's seeds keep x_to's
-phi): test_sphere_great_circle and test_sphere_arrival_modulo_period fail; verification
-skipped (every Newton-converged candidate accepted): test_wrong_kind and
-test_past_directed_only fail; no fan (use_fan False): test_sphere_near_antipodal and
-test_schwarzschild_images fail.
+Mutation checks (each made by hand in metricc/connect.py, the tests run, then reverted):
+periods ignored (_period_map returns {}: no wrapping, no windings): test_sphere_great_circle
+and test_sphere_arrival_modulo_period fail (windings -1/+1 alone removed are not caught: the
+wrapped coordinate difference and the fan cover these pairs); final verification skipped
+(every Newton-converged candidate accepted): test_wrong_kind fails; no fan:
+test_sphere_near_antipodal and test_schwarzschild_images fail; 'stopped' without leaving out
+candidates that never ran: test_stopped_by_event fails.
 """
 from __future__ import annotations
 

@@ -70,7 +70,8 @@ def _stages_function(name: str, P: str, tab: dict, n: int, lanes: int = LANES) -
     cc (NULL: nothing carried) holds the carried components, nc of them per state, in the
     same layout (lanes > 1: cc->yc, cc->kc, ...; lanes = 1: cc->yc1, cc->kc1, ...): they take
     the same stage sums as the state, with the stride nc known only at run time, and their
-    right-hand side follows the state's at each stage. With cc->ec they join the error norm
+    right-hand side comes with the state's (the kernels' f output, the same bits as the
+    plain right-hand side: one evaluation of the shared part). With cc->ec they join the error norm
     (the sums go on over them and the mean is over n + nc components); without, the norm,
     and so the step sequence, is the plain one."""
     tag, s, L = tab["name"], tab["stages"], lanes
@@ -84,7 +85,11 @@ def _stages_function(name: str, P: str, tab: dict, n: int, lanes: int = LANES) -
     loop = [f"    for (i = 0; i < {n}; ++i) {{", f"        for (l = 0; l < {L}; ++l) {{",
             f"            const int o = i * {L} + l;"]
     close = ["        }", "    }"]
-    cloop = ["        for (i = 0; i < nc; ++i) {", f"            for (l = 0; l < {L}; ++l) {{",
+    # the carried arrays are on the heap, where the compiler cannot tell that they do not
+    # overlap: without P_IVDEP (no dependence between the lanes' iterations) the
+    # integrator's -O2 leaves these loops scalar rather than test for overlap at run time
+    cloop = ["        for (i = 0; i < nc; ++i) {", f"            {P}_IVDEP",
+             f"            for (l = 0; l < {L}; ++l) {{",
              f"                const int o = i * {L} + l;"]
     cclose = ["            }", "        }", "    }"]
     sfx = "" if L > 1 else "1"
@@ -93,16 +98,21 @@ def _stages_function(name: str, P: str, tab: dict, n: int, lanes: int = LANES) -
                  f"const int *active, const double *{R} y,"]
 
         def rhs(src, csrc, st):
-            return [f"    {name}_stage_rhs(form, nl, full, active, {src}, lp, k + {st * n * L});",
-                    f"    if (cc) {name}_carry_stage(form, nl, full, active, {src}, {csrc}, lp, cc, "
-                    f"kc + {st} * ncl);"]
+            return [f"    if (cc)",
+                    f"        {name}_carry_stage(form, nl, full, active, {src}, {csrc}, lp, cc, "
+                    f"kc + {st} * ncl, k + {st * n * L});",
+                    "    else",
+                    f"        {name}_stage_rhs(form, nl, full, active, {src}, lp, k + {st * n * L});"]
     else:
         lines = [f"static {P}_FN {P}_NOINLINE void {name}_{tag}_stages1(int form, "
                  f"const double *{R} y,"]
 
         def rhs(src, csrc, st):
-            return [f"    {name}_rhs_form(form, {src}, lp, k + {st * n});",
-                    f"    if (cc) {name}_carry_rhs1(form, cc, {src}, {csrc}, lp, kc + {st} * ncl);"]
+            return [f"    if (cc)",
+                    f"        {name}_carry_rhs1(form, cc, {src}, {csrc}, lp, kc + {st} * ncl, "
+                    f"k + {st * n});",
+                    "    else",
+                    f"        {name}_rhs_form(form, {src}, lp, k + {st * n});"]
     lines += [f"        const double *{R} h, const double *{R} lp, double rtol, double atol, "
               f"double *{R} k,",
               f"        double *{R} ynew, double *{R} err, double *{R} bad, "
@@ -213,9 +223,11 @@ def _dense_functions(name: str, P: str, n: int) -> list[str]:
                   "        for (i = 0; i < nc; ++i) cc->ytc1[i] = cc->yo1[i] + "
                   f"{_combo(row, _aos('nc', 'cc->ka1'))};",
                   "    }"]
-        extra.append(f"    {name}_rhs_form(form, yt, params, k + {st * n});")
-        extra.append(f"    if (cc) {name}_carry_rhs1(form, cc, yt, cc->ytc1, params, "
-                     f"cc->ka1 + {st} * cc->nc);")
+        extra += ["    if (cc)",
+                  f"        {name}_carry_rhs1(form, cc, yt, cc->ytc1, params, "
+                  f"cc->ka1 + {st} * cc->nc, k + {st * n});",
+                  "    else",
+                  f"        {name}_rhs_form(form, yt, params, k + {st * n});"]
     dop_prepare = "\n".join(
         [f"static {P}_FN void {name}_dop853_prepare{head}", f"    double yt[{n}];", "    int i;"]
         + extra + loop(n, dop_cont(n, "y", "ynew", "k", "cont"))

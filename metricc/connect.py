@@ -26,7 +26,7 @@ Shapes: B = batch shape of the pairs, dim coordinates, S = 2*dim state component
 
 Limits (measured on the unit sphere, C backend, 60 random pairs per band of distance from
 the antipode, drawn as in tests/test_connect.py's near-antipodal test with n = 60): 1e-3..3e-3 rad: 6 of 60 converge (2 of them not the
-shortest); 3e-3..1e-2: 45 converge (13 not the shortest); 1e-2..3e-2: 59 converge (9 not the
+shortest); 3e-3..1e-2: 48 converge (14 not the shortest); 1e-2..3e-2: 60 converge (1 not the
 shortest, the long way round the same great circle). Near the conjugate point Newton on u0
 stalls (its Jacobian is nearly singular) and the fan's seeds there are not fine enough.
 Lensing (bench_connect.py --lensing 200): both images for 158 of 200 sources; the missing
@@ -422,14 +422,14 @@ class _Fan:
             rows = np.flatnonzero(ok) + s
             pid = self.pidx[sel[rows]]
             y0 = np.concatenate([prob.x_from[pid], u[rows]], axis=1)
-            j, _, _, samp = self._pass(pid, y0, 1.0, S, first=True)
+            j, _, _, samp = self._pass(pid, y0, 1.0, S, first=self.reach[sel[rows]] / S)
             # a ray closest at its start never comes nearer: no seed (and no plateau of
             # equal minima crowding out real ones)
             start = np.where(j > 0, j - 1, 0)
             ar = np.arange(len(rows))
             y_mid = samp[ar, start]
             fine = max(8, S // 2)
-            jj, shift, fmin, samp2 = self._pass(pid, y_mid, 2.0 / S, fine, first=False)
+            jj, shift, fmin, samp2 = self._pass(pid, y_mid, 2.0 / S, fine, first=None)
             lam_here = (start + (jj + shift) * 2.0 / fine) / S
             fmin = np.where((j > 0) & np.all(np.isfinite(y_mid), axis=1), fmin, np.inf)
             with np.errstate(invalid="ignore"):
@@ -440,7 +440,9 @@ class _Fan:
 
     def _pass(self, pid, y0, lam_end, S, first):
         """Integrate y0 (r, S) to lam_end with S+1 samples; the chosen sample index (r,),
-        the parabola's shift (in samples) and minimum of the squared distance, the samples."""
+        the parabola's shift (in samples) and minimum of the squared distance, the samples.
+        first: None (the closest sample) or the path length between samples (r,): then the
+        first local minimum within 2x of the closest, or within a sample spacing of it."""
         prob, dim = self.prob, self.prob.dim
         lam = np.linspace(0.0, lam_end, S + 1)
         out = prob.k.integrate(y0, lam_end, params=prob.take_params(pid), samples=lam,
@@ -455,13 +457,14 @@ class _Fan:
             d2 = np.einsum("rsi,rij,rsj->rs", d, prob.H[pid], d)
         d2 = np.where(np.isfinite(d2), d2, np.inf)
         r = len(pid)
-        if first:
-            # the first local minimum along the ray within 2x of the closest: a ray that
-            # passes x_to again (a great circle, an orbit) seeds the shorter path
-            lo = np.min(d2, axis=1, keepdims=True)
+        if first is not None:
+            # the first local minimum along the ray within 2x of the closest (or within a
+            # sample spacing: coarse samples can make the first pass look farther): a ray
+            # that passes x_to again (a great circle, an orbit) seeds the shorter path
+            lo = 4 * np.min(d2, axis=1, keepdims=True) + first[:, None] ** 2
             left = np.concatenate([np.full((r, 1), np.inf), d2[:, :-1]], axis=1)
             right = np.concatenate([d2[:, 1:], np.full((r, 1), np.inf)], axis=1)
-            near = (d2 <= left) & (d2 <= right) & (d2 <= 4 * lo) & np.isfinite(d2)
+            near = (d2 <= left) & (d2 <= right) & (d2 <= lo) & np.isfinite(d2)
             j = np.where(near.any(axis=1), np.argmax(near, axis=1), np.argmin(d2, axis=1))
         else:
             j = np.argmin(d2, axis=1)

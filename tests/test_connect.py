@@ -100,8 +100,8 @@ def test_sphere_arrival_modulo_period(sphere_any):
 
 def test_sphere_near_antipodal(sphere):
     # points 1e-2 .. 3e-2 rad away from antipodal: many geodesics nearly as short. This is
-    # NOT yet reliable: with n = 60 in this band 9 pairs return the long way round and one
-    # does not converge (the limits in metricc/connect.py's docstring); these 6 pass, and
+    # not yet fully reliable: with n = 60 in this band 1 pair returns the long way round
+    # (closer to the antipode more fail: metricc/connect.py's docstring); these 6 pass, and
     # the test catches the loss of the fan
     rng = np.random.default_rng(7)
     n = 6 if sphere.backend == "c" else 2

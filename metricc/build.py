@@ -570,7 +570,7 @@ def kernel_units(manifest: dict) -> list[tuple[str, list[str]]]:
         if sec == "core":
             continue
         largest = max(kernels[n]["ops_after"] for n in names)
-        opt = next(flags for floor, flags in GROUP_OPT if largest > floor)
+        opt = next((flags for floor, flags in GROUP_OPT if largest > floor), GROUP_OPT[-1][1])
         if sec == "carry" and largest <= CARRY_O3_OPS:
             opt = []      # the integrator's carried quantities run on these: -O3, as core
 

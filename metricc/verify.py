@@ -213,6 +213,15 @@ def run_checks(k, other=None, n: int = 24, seed: int = 1, expected_signature=Non
             arr = x if name in ("metric", "inverse_metric", "christoffel") else y
             a, b = getattr(k, name)(arr), getattr(other, name)(arr)
             worst = max(worst, _ratio(a - b, _agreement_allowed(getattr(k, name), arr, a)))
+        # the forward-mode kernels (metricc.tangent), in fixed random directions
+        dirs = np.random.default_rng(23).normal(size=(len(y), 2, 2 * dim))
+        for name, d in (("tangent", dirs), ("transport_rhs", dirs[:, :, :dim])):
+            for form in ("geodesic", "hamilton"):
+                arr = y if form == "geodesic" else k.momenta(y)
+                fn = (lambda f, d, form: lambda a: f(a, d, form=form))(getattr(k, name), d,
+                                                                        form)
+                a, b = fn(arr), getattr(other, name)(arr, d, form=form)
+                worst = max(worst, _ratio(a - b, _agreement_allowed(fn, arr, a)))
         checks.append(Check(f"{k.backend} and {other.backend} agree", worst, 1.0,
                             f"max |difference| / ({AGREE_RTOL:.0e} max |output| + "
                             f"{AGREE_SLACK:g} x its change under rounding-sized input changes)"))
@@ -286,9 +295,45 @@ def run_checks(k, other=None, n: int = 24, seed: int = 1, expected_signature=Non
                         _ratio(hz[:, dim:] - dp, pallowed), 1.0,
                         "hamilton_rhs momentum part vs differenced metric, against the size "
                         "of its terms"))
+    checks += _carry_checks(k, y, z, gam, ginv, first_size, term_rtol)
     checks.insert(0, Check("points inside the domain", 0.0, 0.0,
                            f"{len(y)} sampled, {int(usable.sum())} with finite differences"))
     return checks
+
+
+def _carry_checks(k, y, z, gam, ginv, first_size, term_rtol) -> list[Check]:
+    """The transport kernels against the Christoffel symbols checked above (the definition
+    of parallel transport), and the velocity part of the tangent kernel against transport
+    (d a / d u V = -2 Gamma(u, V) for a = -Gamma(u, u)). Each allows term_rtol of the size
+    of its terms: sum |g^ad| |first-kind terms| |u| |V|, or of |Gamma| |u| |V| where that is
+    larger (far out on a tanh profile the differenced derivatives are exactly 0 while the
+    kernels' are 1e-36: both are right)."""
+    dim = k.dim
+    m = len(y)
+    u = y[:, dim:]
+    V = np.random.default_rng(29).normal(size=(m, 2, dim))
+    # size of Gamma's terms
+    gsize = np.maximum(np.einsum("mad,mdbc->mabc", np.abs(ginv), first_size), np.abs(gam))
+    size = np.einsum("mabc,mb,mkc->mka", gsize, np.abs(u), np.abs(V))
+    allowed = term_rtol[:, None, None] * np.max(size, axis=2, keepdims=True)
+    ref = -np.einsum("mabc,mb,mkc->mka", gam, u, V)
+    out = [Check("transport = -Gamma(u, V)", _ratio(k.transport_rhs(y, V) - ref, allowed), 1.0,
+                 "geodesic_transport vs the Christoffel symbols, against the size of the terms")]
+    # covariant: dV_a = Gamma^c_ab u^b V_c; u = g^-1 p inside the kernel
+    size_h = np.einsum("mcab,mb,mkc->mka", gsize, np.abs(u), np.abs(V))
+    allowed_h = term_rtol[:, None, None] * np.max(size_h, axis=2, keepdims=True)
+    ref_h = np.einsum("mcab,mb,mkc->mka", gam, u, V)
+    out.append(Check("covariant transport = Gamma(u, V)",
+                     _ratio(k.transport_rhs(z, V, form="hamilton") - ref_h, allowed_h), 1.0,
+                     "hamilton_transport vs the Christoffel symbols, against the size of the "
+                     "terms"))
+    dirs = np.concatenate([np.zeros_like(V), V], axis=2)
+    tan = k.tangent(y, dirs)[:, :, dim:]
+    out.append(Check("tangent velocity part = 2 x transport",
+                     _ratio(tan - 2 * ref, 2 * allowed), 1.0,
+                     "geodesic_tangent in directions (0, V) vs -2 Gamma(u, V), against the size "
+                     "of the terms"))
+    return out
 
 
 def format_table(spec_name: str, backend: str, checks: list[Check]) -> str:

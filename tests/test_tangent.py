@@ -258,3 +258,31 @@ def test_generated_sources_declare_and_are_deterministic():
         assert f"sphere_{form}_param_derivative_batch(size_t n" in header
     assert "def geodesic_tangent(y, dy, params=DEFAULTS):" in a["sphere_numpy.py"]
     assert "def hamilton_transport(z, v, params=DEFAULTS):" in a["sphere_numpy.py"]
+
+
+class _Skewed:
+    """A MetricKernels stand-in whose transport (or tangent) kernel is off by 1e-6."""
+
+    def __init__(self, k, which):
+        self._k, self._which = k, which
+
+    def __getattr__(self, name):
+        attr = getattr(self._k, name)
+        if name == self._which:
+            return lambda *a, **kw: attr(*a, **kw) * (1 + 1e-6)
+        return attr
+
+
+@pytest.mark.parametrize("which, check", [
+    ("transport_rhs", "transport = -Gamma(u, V)"),
+    ("tangent", "tangent velocity part = 2 x transport")])
+def test_verify_checks_the_forward_mode_kernels(shipped, which, check):
+    """metricc verify compares transport with the Christoffel symbols (the definition of
+    parallel transport) and the tangent's velocity part with transport: each passes on the
+    real kernels and fails when its kernel is off by one part in 1e6."""
+    from metricc.verify import run_checks
+    k = shipped["kerr"]["numpy"]
+    good = {c.name: c.ok for c in run_checks(k)}
+    assert good[check]
+    bad = {c.name: c.ok for c in run_checks(_Skewed(k, which))}
+    assert not bad[check]

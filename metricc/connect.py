@@ -25,7 +25,7 @@ modulo the periods, normalisation, direction of the free coordinates) before it 
 Shapes: B = batch shape of the pairs, dim coordinates, S = 2*dim state components.
 
 Limits (measured on the unit sphere, C backend, 60 random pairs per band of distance from
-the antipode, drawn as in tests/test_connect.py's near-antipodal test with n = 60): 1e-3..3e-3 rad: 6 of 60 converge (2 of them not the
+the antipode, drawn as in tests/test_connect.py's near-antipodal test with n = 60): 1e-3..3e-3 rad: 7 of 60 converge (2 of them not the
 shortest); 3e-3..1e-2: 48 converge (14 not the shortest); 1e-2..3e-2: 60 converge (1 not the
 shortest, the long way round the same great circle). Near the conjugate point Newton on u0
 stalls (its Jacobian is nearly singular) and the fan's seeds there are not fine enough.
@@ -698,7 +698,7 @@ def _solve_pairs(prob: _Problem, n_sol: int, use_fan: bool, tol: float, max_iter
 
     u, target = _coordinate_guesses(prob, pidx)
     if use_fan:
-        K = n_sol + 2
+        K = n_sol + (5 if prob.k.signature[0] == 0 else 2)   # Riemannian: shortest of many
         fu, ft, _ = _Fan(prob, pidx).seeds(K, n_sol, tick)
         u = np.concatenate([u, fu], axis=1)
         target = np.concatenate([target, ft], axis=1)

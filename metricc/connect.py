@@ -737,6 +737,10 @@ def _solve_pairs(prob: _Problem, n_sol: int, use_fan: bool, tol: float, max_iter
     uu = u.reshape(P, C, dim)
     with np.errstate(invalid="ignore"):
         lengths = np.sqrt(np.abs(prob.gnorm(idx, u))).reshape(P, C)
+    if prob.kind == "null":
+        # a null geodesic has length 0; sqrt|g(u0, u0)| would be the normalisation's
+        # residual, of order sqrt(tol) |u0|
+        lengths = np.where(np.isfinite(lengths), 0.0, lengths)
     y1 = y1.reshape(P, C, -1)
     swept = np.zeros((P, C))
     for i in prob.periods:

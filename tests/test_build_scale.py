@@ -79,7 +79,7 @@ def test_group_units_and_heavy_soa_entries(tmp_path, monkeypatch):
     k = metricc.loads(SMALL, backend="c", kernels=["curvature", "jacobian"])
     manifest = json.loads((k.cache_dir / "manifest.json").read_text())
     assert set(manifest["binary"]["unit_seconds"]) == {"wrappers", "kernels", "curvature",
-                                                      "jacobian", "integrator"}
+                                                      "jacobian", "carry", "integrator"}
     source = (k.cache_dir / "schwarzschild.c").read_text()
     assert "schwarzschild_riemann(in_, params + i * params_stride, out_);" in source
     ref = metricc.loads(SMALL, backend="numpy", kernels=["curvature", "jacobian"])

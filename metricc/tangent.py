@@ -23,7 +23,7 @@ import time
 import sympy as sp
 
 from .kernels import Assign, Kernel, Solve, _forward_aliases, _schedule, live_steps
-from .printing import count_ops, is_library_call, library_calls
+from .printing import as_expr, count_ops, is_library_call, library_calls
 from .geometry import numeric_solve_cost
 
 
@@ -188,7 +188,7 @@ def _finish(base: Kernel, name: str, doc: str, shared: list, outputs: list, shap
     steps = _schedule(items, inputs)
     if direction is None:
         steps, outputs = _forward_aliases(steps, outputs)
-        steps = live_steps(steps, set().union(*[sp.sympify(o).free_symbols for o in outputs]))
+        steps = live_steps(steps, set().union(*[as_expr(o).free_symbols for o in outputs]))
         return Kernel(name=name, doc=doc, input_name=base.input_name,
                       input_symbols=base.input_symbols, output_shape=shape, steps=tuple(steps),
                       outputs=tuple(outputs), ops_before=base.ops_before,
@@ -196,11 +196,11 @@ def _finish(base: Kernel, name: str, doc: str, shared: list, outputs: list, shap
     dname, dsyms, dsteps, douts, dshape = direction
     live = set()
     for o in list(base.outputs) + list(douts):
-        live |= sp.sympify(o).free_symbols
+        live |= as_expr(o).free_symbols
     for st in dsteps:
         live |= st.expr.free_symbols
     steps = live_steps(steps, live)
-    dsteps = live_steps(dsteps, set().union(*[sp.sympify(o).free_symbols for o in douts]))
+    dsteps = live_steps(dsteps, set().union(*[as_expr(o).free_symbols for o in douts]))
     return Kernel(name=name, doc=doc, input_name=base.input_name,
                   input_symbols=base.input_symbols, output_shape=base.output_shape,
                   steps=tuple(steps), outputs=base.outputs, ops_before=base.ops_before,

@@ -520,16 +520,21 @@ class MetricKernels:
                 y_end, c_end = np.ascontiguousarray(y_end[:, :n]), y_end[:, n:].copy()
                 if samp is not None:
                     samp, c_samp = samp[..., :n].copy(), samp[..., n:]
+        # samples given in integration order (the usual case) need no reordering: a copy of
+        # (N, S, 2*dim) costs as much as the integration of short rays
+        in_order = order is None or bool(np.all(order == np.arange(len(order))))
         if samp is not None:
-            unsorted = np.empty_like(samp)
-            unsorted[:, order] = samp
-            samp = unsorted.reshape(lead + (len(samples), n))
+            if not in_order:
+                unsorted = np.empty_like(samp)
+                unsorted[:, order] = samp
+                samp = unsorted
+            samp = samp.reshape(lead + (len(samples), n))
         extra = {}
         if carry is not None:
             if nc == 0:   # empty arrays asked for: shapes only
                 c_end = np.zeros((flat.shape[0], 0))
                 c_samp = None if samples is None else np.zeros((flat.shape[0], len(samples), 0))
-            if c_samp is not None:
+            if c_samp is not None and not in_order:
                 unsorted = np.empty_like(c_samp)
                 unsorted[:, order] = c_samp
                 c_samp = unsorted
@@ -605,14 +610,16 @@ class MetricKernels:
         codes = np.empty(N, dtype=np.intc)
         steps = np.empty(N, dtype=np.dtype(f"i{ffi.sizeof('long')}"))
         S = 0 if samples is None else len(samples)
-        samp = np.full((N, S, n), np.nan) if S else None
+        # the C integrator writes every sample of every ray (NaN where not reached, also for
+        # rays an interrupt never started), so the arrays start uninitialised
+        samp = np.empty((N, S, n)) if S else None
         nc = 0 if carry is None else carry.size
         if nc:
             fn = getattr(lib, f"{self.name}_integrate_carry")
             copt, keep = _carry_options(ffi, self.name, carry)
             c0 = carry.pack()
             c_out = np.empty((N, nc))
-            c_samp = np.full((N, S, nc), np.nan) if S else None
+            c_samp = np.empty((N, S, nc)) if S else None
         else:
             fn = getattr(lib, f"{self.name}_integrate_interruptible")
             c_out = c_samp = None

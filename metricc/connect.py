@@ -52,12 +52,28 @@ SCALE_FLOOR = 1e-4    # residual scale: path length + SCALE_FLOOR * |x_to| (roun
 KIND_TOL = 1e-8       # causal character check without free coordinates: |g(u,u)| / |u|^2
 SAME_TOL = 1e-6       # two solutions are one when their u0 differ by less (relative)
 FAN_SAMPLES = 64      # samples along each fan ray (closest approach, parabola refined)
+FAN_SAMPLES_SHORT = 16  # ... in a search for shorter geodesics (rays at most 1.1 L long)
 FAN_REACH = 1.5       # fan rays run FAN_REACH * (coordinate distance + periods) far
+FAN_BEYOND = 1.1      # ... or, looking for a geodesic shorter than one of length L, L * this
+FAN_RTOL = 1e-6       # fan rays' rtol (at least the caller's): they only locate seeds
+SPREAD = 3.0          # a search for shorter geodesics drops a ray whose closest approach
+                      # misses x_to by more than SPREAD times the largest rise of the
+                      # closest approach to a neighbouring ray (a hit between them puts the
+                      # nearest ray within 1/2 of that rise)
+KNOWN_COND = 0.15     # ... and the rays within 1.5 fan spacings of the known solution's
+                      # direction where that solution's exponential map is far from
+                      # singular: smallest singular value of d x_end / d u0 between
+                      # orthonormal frames >= KNOWN_COND (1 in flat space, sin(s)/s on the
+                      # unit sphere): one track there holds just the known solution
 ZOOM_SHRINK = 0.5     # cone half-width factor per zoom level
 ZOOM_MIN = 1e-4       # smallest cone half-width (radians of direction)
 ZOOM_DONE = 1e-3      # a pair stops zooming once it has as many seeds as solutions asked
                       # for that pass within ZOOM_DONE * (their path length) of x_to
 FAN_MEMORY = 2 ** 23  # doubles of samples per integrate call of the fan
+LOOSE_RTOL = 1e-7     # inexact Newton: trial integrations run at max(rtol, LOOSE_RTOL) ...
+LOOSE_UNTIL = 1e-5    # ... while the candidate's accepted residual is above this (the
+                      # integration error, ~LOOSE_RTOL, stays far below the residual then;
+                      # quadratic convergence takes the last steps at the full rtol)
 
 
 @dataclass(frozen=True)
@@ -180,16 +196,34 @@ class _Problem:
             J = np.concatenate([J, row[:, None, :]], axis=1)
         return J
 
-    def integrate(self, idx, u, variations: bool):
+    def integrate(self, idx, u, variations: bool, loose=None):
+        """Integrate [x_from, u] to lambda = 1 (with the velocity variations when asked).
+        loose: (M,) bool rows to run at the inexact-Newton tolerance (None: none). Returns
+        (y_end (M, S), status (M,) str, status_code (M,), variations (M, dim, S) or None)."""
         y0 = np.concatenate([self.x_from[idx], u], axis=1)
         D = None
         if variations:
             D = np.zeros((len(idx), self.dim, 2 * self.dim))
             D[:, np.arange(self.dim), self.dim + np.arange(self.dim)] = 1.0
-        # carried_error=False: the geodesic itself is a plain run's, bit for bit, so the
-        # final plain verification integration arrives at exactly the same point
-        return self.k.integrate(y0, 1.0, params=self.take_params(idx), rtol=self.rtol,
-                                atol=self.atol, variations=D, carried_error=False)
+        M = len(idx)
+        y = np.full((M, 2 * self.dim), np.nan)
+        status = np.full(M, "", dtype=object)
+        code = np.zeros(M, dtype=np.int64)
+        var = np.full((M, self.dim, 2 * self.dim), np.nan) if variations else None
+        loose = np.zeros(M, dtype=bool) if loose is None else loose
+        for rows, rtol in ((~loose, self.rtol), (loose, max(self.rtol, LOOSE_RTOL))):
+            r = np.flatnonzero(rows)
+            if not r.size:
+                continue
+            # carried_error=False: the geodesic itself is a plain run's, bit for bit, so
+            # the final plain verification integration arrives at exactly the same point
+            out = self.k.integrate(y0[r], 1.0, params=self.take_params(idx[r]), rtol=rtol,
+                                   atol=self.atol, variations=None if D is None else D[r],
+                                   carried_error=False)
+            y[r], status[r], code[r] = out.y, out.status, out.status_code
+            if variations:
+                var[r] = out.variations
+        return y, status, code, var
 
     def solve_free(self, idx, u):
         """u with the free component solving g(u,u) = target (root of the wanted sign);
@@ -214,10 +248,12 @@ class _Problem:
         return u
 
 
-def _newton(prob: _Problem, idx, u, target, tol, max_iter, tick):
+def _newton(prob: _Problem, idx, u, target, tol, max_iter, tick, cond=None):
     """Damped Newton for M candidates. Returns u (M, dim), residual (M,), iterations (M,),
     converged (M,) bool, stopped (M,) bool (some trial integration ended on an event or a
-    [domain] boundary before lambda = 1: the candidate ran into a stop)."""
+    [domain] boundary before lambda = 1: the candidate ran into a stop). cond: an (M,)
+    array to fill with the smallest singular value of d x_end / d u0 between orthonormal
+    frames at the last accepted point (all coordinates constrained only)."""
     M, dim = u.shape
     res = np.full(M, np.inf)
     F = np.zeros((M, dim))
@@ -227,6 +263,7 @@ def _newton(prob: _Problem, idx, u, target, tol, max_iter, tick):
     stopped = np.zeros(M, dtype=bool)
     alive = np.all(np.isfinite(u), axis=1)
     have = np.zeros(M, dtype=bool)          # an accepted point exists
+    exact = np.zeros(M, dtype=bool)         # ... and its integration ran at the full rtol
     u_acc = u.copy()
     with np.errstate(invalid="ignore"):
         n0 = np.sqrt(prob.unorm(idx, np.where(np.isfinite(u), u, 0.0)))
@@ -236,26 +273,35 @@ def _newton(prob: _Problem, idx, u, target, tol, max_iter, tick):
     ref = np.full(M, np.inf)                # residual to halve
     since = np.zeros(M, dtype=np.int64)
     for _ in range(max_iter + 1):
-        conv = have & (res <= tol)
+        conv = have & exact & (res <= tol)
         run = alive & ~conv
         if not run.any():
             break
         r = np.flatnonzero(run)
         trial = np.where(have[r, None], u_acc[r] + alpha[r, None] * du[r], u_acc[r])
-        out = prob.integrate(idx[r], trial, variations=True)
+        loose = res[r] > LOOSE_UNTIL
+        y_end, st, code, var = prob.integrate(idx[r], trial, variations=True, loose=loose)
         iters[r] += 1
-        done = out.status == "done"
-        code = out.status_code
+        done = st == "done"
         stopped[r] |= (code == DOMAIN) | (code >= EVENT_BASE)
-        Ft, rt, scale = prob.residual(idx[r], trial, out.y[:, :dim], target[r])
+        Ft, rt, scale = prob.residual(idx[r], trial, y_end[:, :dim], target[r])
         with np.errstate(invalid="ignore"):
             wild = ~(np.sqrt(prob.unorm(idx[r], trial)) <= u_cap[r])
         rt = np.where(done & ~wild, rt, np.inf)
-        better = np.isfinite(rt) & (~have[r] | (rt <= tol) | (rt < (1 - 1e-4 * alpha[r]) * res[r]))
+        # the first full-rtol trial after loose ones is taken as it comes: the accepted
+        # residual it would have to beat holds the loose integration's error
+        better = np.isfinite(rt) & (~have[r] | (rt <= tol) | (~exact[r] & ~loose)
+                                    | (rt < (1 - 1e-4 * alpha[r]) * res[r]))
         a = r[better]
         if a.size:
             u_acc[a], res[a], F[a], have[a] = trial[better], rt[better], Ft[better], True
-            J = prob.jacobian(idx[a], trial[better], out.variations[better], scale[better])
+            exact[a] = ~loose[better]
+            J = prob.jacobian(idx[a], trial[better], var[better], scale[better])
+            if cond is not None:
+                Jn = np.einsum("mij,mjk->mik", J, _sqrt_sym(prob.habs_from[idx[a]], inverse=True))
+                with np.errstate(all="ignore"):
+                    cond[a] = np.linalg.svd(np.where(np.isfinite(Jn), Jn, 0.0) * scale[better][
+                        :, None, None], compute_uv=False)[:, -1]
             step = _solve(J, -Ft[better])
             cap = STEP_MAX * (np.sqrt(prob.unorm(idx[a], trial[better])) + prob.floor[idx[a]])
             size = np.sqrt(prob.unorm(idx[a], step))
@@ -274,7 +320,7 @@ def _newton(prob: _Problem, idx, u, target, tol, max_iter, tick):
         alpha[b] *= 0.5
         alive[b[alpha[b] < ALPHA_MIN]] = False
         tick()
-    return u_acc, res, iters, have & (res <= tol), stopped
+    return u_acc, res, iters, have & exact & (res <= tol), stopped
 
 
 def _solve(J, rhs):
@@ -371,7 +417,11 @@ class _Fan:
     """Fan rays from x_from: directions e (unit, m = dim or dim - 1 components) mapped to
     velocities through B = |g|^(-1/2) at x_from over the direction components."""
 
-    def __init__(self, prob: _Problem, pidx):
+    def __init__(self, prob: _Problem, pidx, known=None, known_cond=None):
+        """known: (P, dim) u0 of a solution already found per pair (NaN rows: none), or
+        None. Pairs with one search only for shorter geodesics: their rays run
+        FAN_BEYOND times its length, no farther, and rays whose closest approach is their
+        far end leave no seed (nothing shorter lies there)."""
         self.prob, self.pidx = prob, pidx
         dim = prob.dim
         self.comps = [i for i in range(dim) if i != prob.fi]
@@ -394,6 +444,32 @@ class _Fan:
                 r = np.sqrt(dd) + np.sqrt(pp)
             reach = np.fmax(reach, r)
         self.reach = FAN_REACH * reach
+        self.short = np.zeros(len(pidx), dtype=bool)
+        self.known_e = np.full((len(pidx), len(c)), np.nan)
+        if known is not None:
+            with np.errstate(invalid="ignore"):
+                length = np.sqrt(np.abs(prob.unorm(pidx, np.where(np.isfinite(known), known, 0))))
+            self.short = np.all(np.isfinite(known), axis=1) & (length > 0)
+            self.reach = np.where(self.short, np.minimum(self.reach, FAN_BEYOND * length),
+                                  self.reach)
+            if known_cond is not None:
+                # the known solution's direction e (unit): u = B e |u| -> e ~ B^-1 u
+                Binv = _sqrt_sym(prob.habs_from[pidx][:, c][:, :, c])
+                ke = np.einsum("pij,pj->pi", Binv, np.where(np.isfinite(known), known, 0)[:, c])
+                with np.errstate(invalid="ignore", divide="ignore"):
+                    ke /= np.linalg.norm(ke, axis=1, keepdims=True)
+                use = self.short & (known_cond >= KNOWN_COND)
+                self.known_e = np.where(use[:, None], ke, np.nan)
+
+    def hopeless(self, dist, nb):
+        """Short-search rays that cannot hold a shorter geodesic nearby: dist (P, Q) closest
+        approaches, nb (Q, q) neighbour lists -> (P, Q) bool. The closest approach D(e) is
+        continuous in the direction and V-shaped around a direction that hits x_to, where
+        the sample nearest the zero has D <= 1/2 of the largest rise to a neighbour."""
+        with np.errstate(invalid="ignore"):
+            rise = np.max(np.where(np.isfinite(dist[:, nb]), dist[:, nb], -np.inf), axis=2) - dist
+            out = dist > SPREAD * rise
+        return self.short[:, None] & np.isfinite(dist) & out
 
     def velocities(self, sel, e):
         """u (R, dim) for pair rows sel (R,) and unit directions e (R, m)."""
@@ -401,41 +477,60 @@ class _Fan:
         u[:, self.comps] = np.einsum("rij,rj->ri", self.B[sel], e) * self.reach[sel, None]
         return self.prob.solve_free(self.pidx[sel], u)
 
-    def closest(self, sel, e):
+    def closest(self, sel, e, refine=None):
         """Closest approach of rays (R,) to x_to: distance (R,), lambda (R,) in [0, 1], the
-        state there (R, S). Two passes: FAN_SAMPLES samples over the whole ray, then
-        FAN_SAMPLES/2 over the two intervals around the chosen sample (from the state at
-        the sample before), each refined by a parabola through three samples."""
+        state there (R, S). Two passes: FAN_SAMPLES samples over the whole ray
+        (FAN_SAMPLES_SHORT for pairs searching for a shorter geodesic), then FAN_SAMPLES/2
+        over the two intervals around the chosen sample (from the state at
+        the sample before), each refined by a parabola through three samples. refine: None
+        (every ray takes the second pass) or a callable mapping the first pass's distances
+        (R,) to the (R,) bool rays that take it (the others keep the first pass's values)."""
         prob, dim = self.prob, self.prob.dim
         R = len(sel)
-        S = FAN_SAMPLES
         dist = np.full(R, np.inf)
         lam_c = np.zeros(R)
         xc = np.zeros((R, 2 * dim))
+        y_mid = np.full((R, 2 * dim), np.nan)
+        spacing = np.ones(R)      # the first pass's sample spacing in lambda
+        start = np.zeros(R, dtype=np.int64)
         u = self.velocities(sel, e)
-        chunk = max(1, FAN_MEMORY // ((S + 1) * 2 * dim))
-        for s in range(0, R, chunk):
-            part = slice(s, min(R, s + chunk))
-            ok = np.all(np.isfinite(u[part]), axis=1)
-            if not ok.any():
-                continue
-            rows = np.flatnonzero(ok) + s
+        n_samp = np.where(self.short[sel], FAN_SAMPLES_SHORT, FAN_SAMPLES)
+        chunks = []
+        for S in np.unique(n_samp):
+            group = np.flatnonzero((n_samp == S) & np.all(np.isfinite(u), axis=1))
+            step = max(1, FAN_MEMORY // ((S + 1) * 2 * dim))
+            chunks += [(int(S), group[c:c + step]) for c in range(0, len(group), step)]
+        for S, rows in chunks:
             pid = self.pidx[sel[rows]]
             y0 = np.concatenate([prob.x_from[pid], u[rows]], axis=1)
-            j, _, _, samp = self._pass(pid, y0, 1.0, S, first=self.reach[sel[rows]] / S)
+            j, shift, fmin, samp = self._pass(pid, y0, 1.0, S, first=self.reach[sel[rows]] / S)
             # a ray closest at its start never comes nearer: no seed (and no plateau of
-            # equal minima crowding out real ones)
-            start = np.where(j > 0, j - 1, 0)
+            # equal minima crowding out real ones); in a search for shorter geodesics, nor
+            # does one closest at its far end
+            far = (j == S) & self.short[sel[rows]]
             ar = np.arange(len(rows))
-            y_mid = samp[ar, start]
-            fine = max(8, S // 2)
-            jj, shift, fmin, samp2 = self._pass(pid, y_mid, 2.0 / S, fine, first=None)
-            lam_here = (start + (jj + shift) * 2.0 / fine) / S
-            fmin = np.where((j > 0) & np.all(np.isfinite(y_mid), axis=1), fmin, np.inf)
+            start[rows] = np.where(j > 0, j - 1, 0)
+            y_mid[rows] = samp[ar, start[rows]]
+            fmin = np.where((j > 0) & ~far & np.all(np.isfinite(y_mid[rows]), axis=1), fmin,
+                            np.inf)
             with np.errstate(invalid="ignore"):
                 dist[rows] = np.where(np.isfinite(fmin), np.sqrt(fmin), np.inf)
-            lam_c[rows] = lam_here
-            xc[rows] = samp2[ar, jj]
+            lam_c[rows] = (j + shift) / S
+            xc[rows] = samp[ar, j]
+            spacing[rows] = 1.0 / S
+        again = np.isfinite(dist) if refine is None else np.isfinite(dist) & refine(dist)
+        fine = max(8, FAN_SAMPLES // 2)
+        chunk = max(1, FAN_MEMORY // ((fine + 1) * 2 * dim))
+        for h in np.unique(spacing[again]):
+            todo = np.flatnonzero(again & (spacing == h))
+            for s in range(0, len(todo), chunk):
+                rows = todo[s:s + chunk]
+                pid = self.pidx[sel[rows]]
+                jj, shift, fmin, samp2 = self._pass(pid, y_mid[rows], 2.0 * h, fine, first=None)
+                with np.errstate(invalid="ignore"):
+                    dist[rows] = np.where(np.isfinite(fmin), np.sqrt(fmin), np.inf)
+                lam_c[rows] = (start[rows] + (jj + shift) * 2.0 / fine) * h
+                xc[rows] = samp2[np.arange(len(rows)), jj]
         return dist, lam_c, xc
 
     def _pass(self, pid, y0, lam_end, S, first):
@@ -446,15 +541,21 @@ class _Fan:
         prob, dim = self.prob, self.prob.dim
         lam = np.linspace(0.0, lam_end, S + 1)
         out = prob.k.integrate(y0, lam_end, params=prob.take_params(pid), samples=lam,
-                               rtol=max(prob.rtol, 1e-8), atol=prob.atol)
+                               rtol=max(prob.rtol, FAN_RTOL), atol=prob.atol)
         samp = out.samples
         d = samp[:, :, :dim] - prob.x_to[pid][:, None, :]
         for i, p in prob.periods.items():
             per = p[pid][:, None]
             d[:, :, i] -= per * np.floor(d[:, :, i] / per + 0.5)
-        d = d[:, :, prob.cons]
-        with np.errstate(invalid="ignore"):
-            d2 = np.einsum("rsi,rij,rsj->rs", d, prob.H[pid], d)
+        H = prob.H[pid]
+        d2 = np.zeros(d.shape[:2])
+        with np.errstate(invalid="ignore", over="ignore"):
+            # d^T H d term by term (H symmetric): einsum over (r, s, i, j) is several times
+            # slower for the small dims here, and this runs over every sample of every ray
+            for a, i in enumerate(prob.cons):
+                d2 += H[:, a, a, None] * d[:, :, i] ** 2
+                for b in range(a + 1, len(prob.cons)):
+                    d2 += 2.0 * H[:, a, b, None] * (d[:, :, i] * d[:, :, prob.cons[b]])
         d2 = np.where(np.isfinite(d2), d2, np.inf)
         r = len(pid)
         if first is not None:
@@ -493,9 +594,19 @@ class _Fan:
         n0 = pts.shape[0]
         sel = np.repeat(np.arange(P), n0)
         e = np.tile(pts, (P, 1))
-        dist, lam, xc = self.closest(sel, e)
+        def worth(d):
+            # short searches refine only the rays that may seed something
+            d = d.reshape(P, n0)
+            keep = (d <= np.min(d[:, nb0], axis=2)) & ~self.hopeless(d, nb0)
+            return (keep | ~self.short[:, None]).ravel()
+
+        dist, lam, xc = self.closest(sel, e, refine=worth)
         dist = dist.reshape(P, n0)
         is_min = dist <= np.min(dist[:, nb0], axis=2)
+        is_min &= ~self.hopeless(dist, nb0)
+        with np.errstate(invalid="ignore"):
+            near_known = np.einsum("pm,nm->pn", self.known_e, pts) > np.cos(1.5 * spacing)
+        is_min &= ~near_known
         pool = _select(np.where(is_min, dist, np.inf), e.reshape(P, n0, m),
                        lam.reshape(P, n0), xc.reshape(P, n0, -1), K, spacing)
         tick()
@@ -528,6 +639,10 @@ class _Fan:
                     s2 = np.repeat(np.arange(P), K * npt)[rows]
                     dd[rows], ll[rows], xx[rows] = self.closest(s2, dirs.reshape(-1, m)[rows])
                 dd = dd.reshape(P, K, npt)
+                dd = np.where(self.hopeless(dd.reshape(P, K * npt),
+                                            (nbp[None, :, :] + npt * np.arange(K)[:, None, None])
+                                            .reshape(K * npt, -1)).reshape(P, K, npt),
+                              np.inf, dd)
                 is_min = dd <= np.min(dd[:, :, nbp], axis=3)
                 # each track's own best point first (a track is never crowded out by the
                 # other minima of a better one), then the other minima fill free slots
@@ -697,15 +812,38 @@ def _solve_pairs(prob: _Problem, n_sol: int, use_fan: bool, tol: float, max_iter
             progress(min(state["done"], total), total)
 
     u, target = _coordinate_guesses(prob, pidx)
-    if use_fan:
-        K = n_sol + (5 if prob.k.signature[0] == 0 else 2)   # Riemannian: shortest of many
-        fu, ft, _ = _Fan(prob, pidx).seeds(K, n_sol, tick)
-        u = np.concatenate([u, fu], axis=1)
-        target = np.concatenate([target, ft], axis=1)
-    C = u.shape[1]
-    idx = np.repeat(pidx, C)
-    u, res, it, conv, stopped = _newton(prob, idx, u.reshape(-1, dim),
-                                         target.reshape(-1, dim), tol, max_iter, tick)
+    riemannian = prob.k.signature[0] == 0
+    if use_fan and riemannian and n_sol == 1:
+        # the shortest geodesic: Newton from the unwound coordinate guess first; where it
+        # converges, the fan only looks for something shorter (rays as long as the
+        # solution, which is far cheaper than the full fan); elsewhere all windings and
+        # the full fan as below
+        cond = np.zeros(P)
+        first = _newton(prob, pidx, u[:, 0], target[:, 0], tol, max_iter, tick, cond=cond)
+        known = np.where(first[3][:, None], first[0], np.nan)
+        K = n_sol + 5
+        fu, ft, _ = _Fan(prob, pidx, known=known, known_cond=cond).seeds(K, n_sol, tick)
+        again = ~first[3]
+        u = np.concatenate([np.where(again[:, None, None], u, np.nan), fu], axis=1)[:, 1:]
+        target = np.concatenate([target, ft], axis=1)[:, 1:]
+        C2 = u.shape[1]
+        second = _newton(prob, np.repeat(pidx, C2), u.reshape(-1, dim),
+                         target.reshape(-1, dim), tol, max_iter, tick)
+        C = 1 + C2
+        u, res, it, conv, stopped = (
+            np.concatenate([a[:, None], b.reshape((P, C2) + a.shape[1:])], axis=1)
+            .reshape((P * C,) + a.shape[1:]) for a, b in zip(first, second))
+        idx = np.repeat(pidx, C)
+    else:
+        if use_fan:
+            K = n_sol + (5 if riemannian else 2)   # Riemannian: shortest of many
+            fu, ft, _ = _Fan(prob, pidx).seeds(K, n_sol, tick)
+            u = np.concatenate([u, fu], axis=1)
+            target = np.concatenate([target, ft], axis=1)
+        C = u.shape[1]
+        idx = np.repeat(pidx, C)
+        u, res, it, conv, stopped = _newton(prob, idx, u.reshape(-1, dim),
+                                             target.reshape(-1, dim), tol, max_iter, tick)
     # verification: a plain integration from each converged u0 (the same steps Newton's
     # base state took), the arrival compared modulo the periods, normalisation, direction
     y1 = np.full((P * C, 2 * dim), np.nan)
@@ -714,11 +852,11 @@ def _solve_pairs(prob: _Problem, n_sol: int, use_fan: bool, tol: float, max_iter
     wrong_kind = np.zeros(P * C, dtype=bool)
     if ok.any():
         r = np.flatnonzero(ok)
-        out = prob.integrate(idx[r], u[r], variations=False)
-        x_end = out.y[:, :dim]
+        y_end, st, _, _ = prob.integrate(idx[r], u[r], variations=False)
+        x_end = y_end[:, :dim]
         d = prob.wrap(idx[r], x_end - prob.x_to[idx[r]])
         _, vr, _ = prob.residual(idx[r], u[r], prob.x_to[idx[r]] + d, prob.x_to[idx[r]])
-        good = (out.status == "done") & (vr <= tol)
+        good = (st == "done") & (vr <= tol)
         gn = prob.gnorm(idx[r], u[r])
         un = prob.unorm(idx[r], u[r])
         if prob.fi is not None:
@@ -729,7 +867,7 @@ def _solve_pairs(prob: _Problem, n_sol: int, use_fan: bool, tol: float, max_iter
             wrong_kind[r] = good & ~fits
             good &= fits
         ok[r] = good
-        y1[r] = out.y
+        y1[r] = y_end
         vres[r] = vr
     tick()
     # per pair: distinct verified solutions, ordered

@@ -15,6 +15,9 @@
   the travel time is the exact quadrature t = int dr / ((1 - 2M/r) sqrt(1 - b^2 (1 - 2M/r)
   /r^2)) (mpmath); in the weak field the excess over the flat straight-line time is the
   one-way Shapiro delay 2M ln(4 r_1 r_2 / b^2) (Shapiro 1964) up to terms of order M.
+- A Gaussian hill (the graph of z = h exp(-(x^2+y^2)/w^2)): the straight geodesic over the
+  top, by scipy.integrate.quad, is longer than the shortest path around, measured by an
+  independent shortest-polyline minimisation (scipy.optimize, Richardson-extrapolated).
 - Points that cannot be connected end with a clear status, never "converged", never an
   exception for the batch.
 
@@ -24,7 +27,9 @@ and test_sphere_arrival_modulo_period fail (windings -1/+1 alone removed are not
 wrapped coordinate difference and the fan cover these pairs); final verification skipped
 (every Newton-converged candidate accepted): test_wrong_kind fails; no fan:
 test_sphere_near_antipodal and test_schwarzschild_images fail; 'stopped' without leaving out
-candidates that never ran: test_stopped_by_event fails.
+candidates that never ran: test_stopped_by_event fails; the search for a shorter geodesic
+after a first one converged left out (its fan seeds dropped): test_hill_shortest_goes_around
+fails (it returns the path over the top).
 """
 from __future__ import annotations
 
@@ -123,6 +128,84 @@ def test_sphere_solutions_ordered(sphere):
     assert list(sol.status) == ["converged", "converged"]
     a = great_circle(x1, x2)
     np.testing.assert_allclose(sol.length, [a, 2 * np.pi - a], rtol=1e-9)
+
+
+# -- a hill: the straight geodesic over the top is not the shortest -----------------------------
+# graph of z = h exp(-(x^2 + y^2)/w^2) over the plane (induced metric dx^2 + dy^2 + dz^2)
+HILL = """
+name = "hill"
+summary = "graph of a Gaussian hill over the plane"
+coordinates = ["x", "y"]
+signature = "++"
+line_element = "dx^2 + dy^2 + (4*h^2/w^4)*exp(-2*(x^2 + y^2)/w^2)*(x*dx + y*dy)^2"
+
+[parameters]
+h = 2.0
+w = 1.0
+"""
+HILL_H, HILL_W, HILL_A = 2.0, 1.0, 3.0
+
+
+def hill_over_the_top():
+    """Length of the straight geodesic y = 0 from x = -a to a (a geodesic by the mirror
+    symmetry y -> -y): int sqrt(1 + z'(x)^2) dx by scipy.integrate.quad."""
+    from scipy.integrate import quad
+
+    def slope(x):
+        return -2 * x * HILL_H / HILL_W ** 2 * np.exp(-x * x / HILL_W ** 2)
+    return quad(lambda x: np.sqrt(1 + slope(x) ** 2), -HILL_A, HILL_A, epsabs=1e-13,
+                epsrel=1e-13)[0]
+
+
+def hill_shortest():
+    """Length of the shortest path around the hill, independently of metricc: the shortest
+    polyline with n interior vertices on the surface (their (x, y) free, z on the graph;
+    scipy.optimize L-BFGS-B with the exact gradient of the summed chord lengths), for
+    n = 200 and 400; chords fall short of the arcs by O(1/n^2), so Richardson
+    extrapolation (4 L_400 - L_200) / 3 removes the leading term."""
+    from scipy.optimize import minimize
+    h, w, a = HILL_H, HILL_W, HILL_A
+
+    def polyline(n):
+        def length(v):
+            x = np.concatenate([[-a], v[:n], [a]])
+            y = np.concatenate([[0.0], v[n:], [0.0]])
+            z = h * np.exp(-(x * x + y * y) / w ** 2)
+            d = np.diff(np.stack([x, y, z], 1), axis=0)
+            s = np.linalg.norm(d, axis=1)
+            e = d / s[:, None]
+            gp = np.zeros((n + 2, 3))
+            gp[:-1] -= e
+            gp[1:] += e
+            gx = gp[:, 0] - gp[:, 2] * 2 * x / w ** 2 * z
+            gy = gp[:, 1] - gp[:, 2] * 2 * y / w ** 2 * z
+            return s.sum(), np.concatenate([gx[1:-1], gy[1:-1]])
+        t = np.linspace(0, 1, n + 2)[1:-1]
+        start = np.concatenate([-a + 2 * a * t, 1.5 * np.sin(np.pi * t)])  # around one side
+        return minimize(length, start, jac=True, method="L-BFGS-B",
+                        options={"maxiter": 20000, "ftol": 1e-15, "gtol": 1e-12}).fun
+    return (4 * polyline(400) - polyline(200)) / 3
+
+
+@pytest.mark.parametrize("backend", BACKENDS)
+def test_hill_shortest_goes_around(backend):
+    # Newton from the straight coordinate guess lands on the symmetric path over the top;
+    # the shortest geodesics go round either side (the search for something shorter must
+    # find them: without it this returns the path over the top)
+    k = metricc.loads(HILL, backend=backend)
+    x1, x2 = np.array([-HILL_A, 0.0]), np.array([HILL_A, 0.0])
+    over, around = hill_over_the_top(), hill_shortest()
+    assert around < over - 1.0
+    sol = k.connect(x1, x2)
+    assert sol.status == "converged"
+    np.testing.assert_allclose(sol.length, around, rtol=3e-6)
+    np.testing.assert_allclose(sol.y1[:2], x2, atol=1e-9)
+    if backend == "c":
+        # all three, by length: the two mirror images, then the path over the top
+        sol = k.connect(x1, x2, solutions=3)
+        assert list(sol.status) == ["converged"] * 3
+        np.testing.assert_allclose(sol.length, [around, around, over], rtol=3e-6)
+        np.testing.assert_allclose(sol.y0[:2, 3], [-sol.y0[1, 3], -sol.y0[0, 3]], rtol=1e-8)
 
 
 # -- flat spacetime ---------------------------------------------------------------------------

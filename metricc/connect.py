@@ -248,12 +248,13 @@ class _Problem:
         return u
 
 
-def _newton(prob: _Problem, idx, u, target, tol, max_iter, tick, cond=None):
+def _newton(prob: _Problem, idx, u, target, tol, max_iter, tick, cond=None, natural=False):
     """Damped Newton for M candidates. Returns u (M, dim), residual (M,), iterations (M,),
     converged (M,) bool, stopped (M,) bool (some trial integration ended on an event or a
     [domain] boundary before lambda = 1: the candidate ran into a stop). cond: an (M,)
     array to fill with the smallest singular value of d x_end / d u0 between orthonormal
-    frames at the last accepted point (all coordinates constrained only)."""
+    frames at the last accepted point (all coordinates constrained only). natural: also
+    accept trials that pass the natural monotonicity test (below)."""
     M, dim = u.shape
     res = np.full(M, np.inf)
     F = np.zeros((M, dim))
@@ -272,6 +273,9 @@ def _newton(prob: _Problem, idx, u, target, tol, max_iter, tick, cond=None):
     u_cap = U_CAP * (pair_max[idx] + prob.floor[idx])
     ref = np.full(M, np.inf)                # residual to halve
     since = np.zeros(M, dtype=np.int64)
+    J_acc = np.zeros((M, dim, dim))         # the Jacobian at the accepted point
+    full = np.full(M, np.inf)               # |full Newton step| there (|g| norm at x_from)
+    frac = np.ones(M)                       # fraction of it that du holds (the step cap)
     for _ in range(max_iter + 1):
         conv = have & exact & (res <= tol)
         run = alive & ~conv
@@ -287,10 +291,28 @@ def _newton(prob: _Problem, idx, u, target, tol, max_iter, tick, cond=None):
         Ft, rt, scale = prob.residual(idx[r], trial, y_end[:, :dim], target[r])
         with np.errstate(invalid="ignore"):
             wild = ~(np.sqrt(prob.unorm(idx[r], trial)) <= u_cap[r])
+        if prob.fi is not None:
+            # the free coordinate must keep its direction: the normalisation row is also
+            # solved by the other root (for a static metric the same path with the time
+            # reversed), which Newton would otherwise happily jump to
+            wild |= ~(prob.sign[idx[r]] * trial[:, prob.fi] > 0)
         rt = np.where(done & ~wild, rt, np.inf)
+        # natural monotonicity (Deuflhard 2004, Newton Methods for Nonlinear Problems,
+        # sec. 3.1.4): the simplified Newton correction J_acc^-1 F(trial) must be shorter
+        # than the step by 1 - lambda/4 (lambda: the fraction of the full step taken). It is
+        # affine invariant: where J is ill-conditioned (rays that pass near a photon
+        # sphere) the residual norm of plain Newton can rise on the way to convergence.
+        # It also lets a candidate wander into another solution's basin, so it is the
+        # second attempt for candidates the residual test left unconverged
+        nat = np.zeros(len(r), dtype=bool)
+        if natural:
+            with np.errstate(all="ignore"):
+                simple = np.sqrt(prob.unorm(idx[r], _solve(J_acc[r], -np.where(
+                    np.isfinite(Ft), Ft, 0.0))))
+                nat = have[r] & (simple <= (1 - 0.25 * alpha[r] * frac[r]) * full[r])
         # the first full-rtol trial after loose ones is taken as it comes: the accepted
         # residual it would have to beat holds the loose integration's error
-        better = np.isfinite(rt) & (~have[r] | (rt <= tol) | (~exact[r] & ~loose)
+        better = np.isfinite(rt) & (~have[r] | (rt <= tol) | (~exact[r] & ~loose) | nat
                                     | (rt < (1 - 1e-4 * alpha[r]) * res[r]))
         a = r[better]
         if a.size:
@@ -308,6 +330,7 @@ def _newton(prob: _Problem, idx, u, target, tol, max_iter, tick, cond=None):
             with np.errstate(invalid="ignore", divide="ignore"):
                 shrink = np.where(size > cap, cap / size, 1.0)
             du[a] = step * shrink[:, None]
+            J_acc[a], full[a], frac[a] = J, size, shrink
             alpha[a] = 1.0
             alive[a] &= np.all(np.isfinite(du[a]), axis=1)
         halved = better & (rt <= 0.5 * ref[r])
@@ -792,6 +815,25 @@ def connect(k, x_from, x_to, params=None, kind=None, free=None, solutions=1, rto
                       iterations=iters.reshape(shape), residual=resid.reshape(shape))
 
 
+def _distinct(prob: _Problem, uu, okm):
+    """(P, C) bool: the candidates okm (P, C) whose u0 uu (P, C, dim) differ from every
+    earlier kept one of their pair by more than SAME_TOL (relative, |g| norm at x_from)."""
+    P, C = okm.shape
+    kept = np.zeros((P, C), dtype=bool)
+    habs = prob.habs_from
+    for j in range(C):
+        cand = okm[:, j].copy()
+        for i in range(j):
+            dv = uu[:, j] - uu[:, i]
+            with np.errstate(invalid="ignore"):
+                dn = np.sqrt(np.abs(np.einsum("pi,pij,pj->p", dv, habs, dv)))
+                un = np.sqrt(np.abs(np.einsum("pi,pij,pj->p", uu[:, i], habs, uu[:, i])))
+            same = kept[:, i] & (dn <= SAME_TOL * un + prob.floor)
+            cand &= ~same
+        kept[:, j] = cand
+    return kept
+
+
 def _solve_pairs(prob: _Problem, n_sol: int, use_fan: bool, tol: float, max_iter: int,
                  progress):
     """Solve the P pairs of ``prob``: (y0, y1, length, status, iterations, residual) with
@@ -842,8 +884,17 @@ def _solve_pairs(prob: _Problem, n_sol: int, use_fan: bool, tol: float, max_iter
             target = np.concatenate([target, ft], axis=1)
         C = u.shape[1]
         idx = np.repeat(pidx, C)
-        u, res, it, conv, stopped = _newton(prob, idx, u.reshape(-1, dim),
-                                             target.reshape(-1, dim), tol, max_iter, tick)
+        seeds, targets = u.reshape(-1, dim), target.reshape(-1, dim)
+        u, res, it, conv, stopped = _newton(prob, idx, seeds, targets, tol, max_iter, tick)
+        # candidates that stalled: once more with natural monotonicity
+        retry = np.flatnonzero(~conv & ~stopped & (it > 1))
+        if retry.size:
+            more = _newton(prob, idx[retry], seeds[retry], targets[retry], tol, max_iter,
+                           tick, natural=True)
+            took = retry[more[3]]
+            it[retry] += more[2]
+            for arr, new in zip((u, res, conv), more[:2] + (more[3],)):
+                arr[took] = new[more[3]]
     # verification: a plain integration from each converged u0 (the same steps Newton's
     # base state took), the arrival compared modulo the periods, normalisation, direction
     y1 = np.full((P * C, 2 * dim), np.nan)
@@ -892,18 +943,7 @@ def _solve_pairs(prob: _Problem, n_sol: int, use_fan: bool, tol: float, max_iter
     order = np.lexsort((swept, key1), axis=1)
     ar = np.arange(P)[:, None]
     okm, uu = okm[ar, order], uu[ar, order]
-    kept = np.zeros((P, C), dtype=bool)
-    habs = prob.habs_from
-    for j in range(C):
-        cand = okm[:, j].copy()
-        for i in range(j):
-            dv = uu[:, j] - uu[:, i]
-            with np.errstate(invalid="ignore"):
-                dn = np.sqrt(np.abs(np.einsum("pi,pij,pj->p", dv, habs, dv)))
-                un = np.sqrt(np.abs(np.einsum("pi,pij,pj->p", uu[:, i], habs, uu[:, i])))
-            same = kept[:, i] & (dn <= SAME_TOL * un + prob.floor)
-            cand &= ~same
-        kept[:, j] = cand
+    kept = _distinct(prob, uu, okm)
     # the first n_sol kept entries per pair
     rank = np.cumsum(kept, axis=1) - 1
     out_y0 = np.full((P, n_sol, 2 * dim), np.nan)

@@ -29,7 +29,8 @@ wrapped coordinate difference and the fan cover these pairs); final verification
 test_sphere_near_antipodal and test_schwarzschild_images fail; 'stopped' without leaving out
 candidates that never ran: test_stopped_by_event fails; the search for a shorter geodesic
 after a first one converged left out (its fan seeds dropped): test_hill_shortest_goes_around
-fails (it returns the path over the top).
+fails (it returns the path over the top); natural monotonicity never used (natural=False
+in every _newton call): test_schwarzschild_image_ill_conditioned fails (no_convergence).
 """
 from __future__ import annotations
 
@@ -370,6 +371,31 @@ def test_schwarzschild_images_numpy():
     k = metricc.load(SPECS / "schwarzschild.toml", backend="numpy")
     obs = np.array([0.0, 1000.0, np.pi / 2, 0.0])
     _check_images(k, obs, np.array([[-1.0, 10.0, np.pi / 2, np.pi - 0.05]]))
+
+
+@needs_cc
+def test_schwarzschild_image_ill_conditioned():
+    # a source almost straight behind the hole, off the equatorial plane of the chart: the
+    # direct image's d x_end / d u0 has singular values 3500x apart and plain damped Newton
+    # stalls (its residual rises on the way in); the natural-monotonicity retry converges.
+    # Reference: the exact orbit integral (mpmath), as in _check_images
+    k = metricc.load(SPECS / "schwarzschild.toml", backend="c")
+    obs = np.array([0.0, 1000.0, np.pi / 2, 0.0])
+    src = np.array([-1.0, 22.67, 1.596, 3.1298])
+    sol = k.connect(obs, src, free=["t"], kind="null")
+    assert sol.status == "converged"
+    b = float(_impact(k, sol.y0))
+    Phi = float(_separation(obs, src))
+    phi, t, rp = _orbit_pieces(b, 1.0, obs[1], src[1])
+    h = 1e-6 * b
+    slope = (_orbit_pieces(b + h, 1.0, obs[1], src[1])[0]
+             - _orbit_pieces(b - h, 1.0, obs[1], src[1])[0]) / (2 * h)
+    np.testing.assert_allclose(b, b - float(phi - Phi) / float(slope), rtol=1e-9)
+    dtdb = (_orbit_pieces(b + h, 1.0, obs[1], src[1])[1]
+            - _orbit_pieces(b - h, 1.0, obs[1], src[1])[1]) / (2 * h)
+    bref = b - float(phi - Phi) / float(slope)
+    np.testing.assert_allclose(obs[0] - sol.y1[0], float(t) + float(dtdb) * (bref - b),
+                               rtol=1e-9)
 
 
 @needs_cc

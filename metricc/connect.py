@@ -12,25 +12,44 @@ per Newton iteration. Candidates come from
 
 - coordinate differences: u0 = x_to + w P - x_from for windings w in {-1, 0, 1} of each
   periodic coordinate (P its period);
-- where one guess is not enough (Riemannian shortest, ``solutions`` > 1, null with free
-  coordinates): a fan of geodesics from x_from over unit directions (|g|-orthonormal at
-  x_from), refined by zooming into the directions whose closest approach to x_to is a local
-  minimum; each seed is the fan ray scaled so that lambda = 1 falls on its closest approach.
+- where one guess is not enough (``solutions`` > 1, null with free coordinates, a Riemannian
+  pair whose first guess fails): a fan of geodesics from x_from over unit directions
+  (|g|-orthonormal at x_from), refined by zooming into the directions whose closest approach
+  to x_to is a local minimum; each seed is the fan ray scaled so that lambda = 1 falls on
+  its closest approach.
 
-Newton is damped: the step is limited to the size of u0 (in the |g| norm at x_from) and
-halved while the residual does not decrease or the trial integration stops early. Every
-candidate that converges is checked again by a plain integration (arrival within ``tol``
-modulo the periods, normalisation, direction of the free coordinates) before it counts.
+The shortest geodesic on a Riemannian spec (solutions=1) runs in two phases: Newton from the
+unwound coordinate guess, then, where it converged with length L, a fan that only looks for
+something shorter: rays 1.1 L long, 16 samples each, the known solution's own track left out
+where its exponential map is far from singular, and rays dropped whose closest approach
+cannot hide a hit between them and their neighbours (the closest approach is V-shaped around
+a hit). Pairs whose first guess failed get all windings and the full fan.
+
+Newton is damped and inexact: trial integrations run at rtol 1e-7 while the residual is
+above 1e-5, then at the caller's rtol. The step is limited to the size of u0 (in the |g| norm
+at x_from) and halved while the residual does not decrease or the trial integration stops
+early. Candidates that stall get a second run that also accepts steps passing Deuflhard's
+natural monotonicity test (ill-conditioned lensing rays), and on Riemannian specs a third
+with polar steps: the direction turns on the sphere of directions while the length changes
+separately, which keeps Newton off the conjugate point just beyond x_to for nearly
+antipodal points. Every candidate that converges is checked again by a plain integration
+(arrival within ``tol`` modulo the periods, normalisation, direction of the free
+coordinates) before it counts.
 
 Shapes: B = batch shape of the pairs, dim coordinates, S = 2*dim state components.
 
-Limits (measured on the unit sphere, C backend, 60 random pairs per band of distance from
-the antipode, drawn as in tests/test_connect.py's near-antipodal test with n = 60): 1e-3..3e-3 rad: 7 of 60 converge (2 of them not the
-shortest); 3e-3..1e-2: 48 converge (14 not the shortest); 1e-2..3e-2: 60 converge (1 not the
-shortest, the long way round the same great circle). Near the conjugate point Newton on u0
-stalls (its Jacobian is nearly singular) and the fan's seeds there are not fine enough.
-Lensing (bench_connect.py --lensing 200): both images for 158 of 200 sources; the missing
-secondary images end "not_found".
+Limits, measured (C backend):
+
+- unit sphere, 60 random pairs per band of distance eps from the antipode, drawn as in
+  tests/test_connect.py's near-antipodal test: eps in 1e-5..1e-4, 1e-4..1e-3, ...,
+  3e-2..1e-1: 60 of 60 converge to the shortest; 1e-6..1e-5: 60 converge, 1 of them the
+  long way round (2 eps longer).
+- WGS84: 120 nearly antipodal pairs (tests/test_connect_geodesy.py's draw) and 60 within
+  0.05 degrees of latitude and 0.3 of longitude of the antipode: all within 0.1 mm of
+  geographiclib.
+- Lensing (bench_connect.py --lensing 200): both images for 159 of 200 sources; the missing
+  secondary images end "not_found". Near the Einstein ring every ray passes close to the
+  source, the fan's seeds spread along the ring and Newton from them finds the direct image.
 """
 from __future__ import annotations
 
@@ -248,13 +267,15 @@ class _Problem:
         return u
 
 
-def _newton(prob: _Problem, idx, u, target, tol, max_iter, tick, cond=None, natural=False):
+def _newton(prob: _Problem, idx, u, target, tol, max_iter, tick, cond=None, natural=False,
+            polar=False):
     """Damped Newton for M candidates. Returns u (M, dim), residual (M,), iterations (M,),
     converged (M,) bool, stopped (M,) bool (some trial integration ended on an event or a
     [domain] boundary before lambda = 1: the candidate ran into a stop). cond: an (M,)
     array to fill with the smallest singular value of d x_end / d u0 between orthonormal
     frames at the last accepted point (all coordinates constrained only). natural: also
-    accept trials that pass the natural monotonicity test (below)."""
+    accept trials that pass the natural monotonicity test (below). polar: move along the
+    sphere of directions (_polar_step) rather than in a straight line in u0."""
     M, dim = u.shape
     res = np.full(M, np.inf)
     F = np.zeros((M, dim))
@@ -282,7 +303,11 @@ def _newton(prob: _Problem, idx, u, target, tol, max_iter, tick, cond=None, natu
         if not run.any():
             break
         r = np.flatnonzero(run)
-        trial = np.where(have[r, None], u_acc[r] + alpha[r, None] * du[r], u_acc[r])
+        if polar:
+            trial = np.where(have[r, None], _polar_step(prob, idx[r], u_acc[r],
+                                                        alpha[r, None] * du[r]), u_acc[r])
+        else:
+            trial = np.where(have[r, None], u_acc[r] + alpha[r, None] * du[r], u_acc[r])
         loose = res[r] > LOOSE_UNTIL
         y_end, st, code, var = prob.integrate(idx[r], trial, variations=True, loose=loose)
         iters[r] += 1
@@ -344,6 +369,33 @@ def _newton(prob: _Problem, idx, u, target, tol, max_iter, tick, cond=None, natu
         alive[b[alpha[b] < ALPHA_MIN]] = False
         tick()
     return u_acc, res, iters, have & exact & (res <= tol), stopped
+
+
+def _polar_step(prob: _Problem, idx, u, du):
+    """u (M, dim) moved by the Newton step du in polar form: with w = |g|^(1/2) u = s e at
+    x_from (s the length, e the unit direction), the step's radial part changes s and its
+    tangential part t turns e by the angle |t| / s towards t. To first order this is
+    u + du; near a conjugate point of nearly antipodal points, where the arrival turns
+    about the far point as the direction turns, a straight step that turns the direction
+    also lengthens the geodesic past the conjugate point and lands on the other side."""
+    h = prob.habs_from[idx]
+    root, inv = _sqrt_sym(h), _sqrt_sym(h, inverse=True)
+    w = np.einsum("mij,mj->mi", root, u)
+    dw = np.einsum("mij,mj->mi", root, du)
+    with np.errstate(all="ignore"):
+        s = np.linalg.norm(w, axis=1)
+        e = w / s[:, None]
+        ds = np.einsum("mi,mi->m", e, dw)
+        t = dw - ds[:, None] * e
+        tn = np.linalg.norm(t, axis=1)
+        ang = tn / s
+        turned = np.cos(ang)[:, None] * e + np.sin(ang)[:, None] * np.where(
+            tn[:, None] > 0, t / tn[:, None], 0.0)
+        w_new = (s + ds)[:, None] * turned
+        # a step through the origin or a non-finite one falls back to the straight step
+        bad = ~(s + ds > 0) | ~np.all(np.isfinite(w_new), axis=1)
+    out = np.einsum("mij,mj->mi", inv, w_new)
+    return np.where(bad[:, None], u + du, out)
 
 
 def _solve(J, rhs):
@@ -815,6 +867,21 @@ def connect(k, x_from, x_to, params=None, kind=None, free=None, solutions=1, rto
                       iterations=iters.reshape(shape), residual=resid.reshape(shape))
 
 
+def _retry(prob: _Problem, idx, seeds, targets, out, tol, max_iter, tick, **how):
+    """Newton again, with the options ``how`` (natural=True, polar=True), from the seeds
+    (M, dim) of the candidates that stalled (unconverged, not stopped, more than one
+    integration); out = (u, res, it, conv, stopped) (M, ...) is updated in place where the
+    second run converges (its integrations are added to it everywhere it ran)."""
+    u, res, it, conv, stopped = out
+    rows = np.flatnonzero(~conv & ~stopped & (it > 1))
+    if not rows.size:
+        return
+    more = _newton(prob, idx[rows], seeds[rows], targets[rows], tol, max_iter, tick, **how)
+    it[rows] += more[2]
+    took = more[3]
+    u[rows[took]], res[rows[took]], conv[rows[took]] = more[0][took], more[1][took], True
+
+
 def _distinct(prob: _Problem, uu, okm):
     """(P, C) bool: the candidates okm (P, C) whose u0 uu (P, C, dim) differ from every
     earlier kept one of their pair by more than SAME_TOL (relative, |g| norm at x_from)."""
@@ -869,8 +936,10 @@ def _solve_pairs(prob: _Problem, n_sol: int, use_fan: bool, tol: float, max_iter
         u = np.concatenate([np.where(again[:, None, None], u, np.nan), fu], axis=1)[:, 1:]
         target = np.concatenate([target, ft], axis=1)[:, 1:]
         C2 = u.shape[1]
-        second = _newton(prob, np.repeat(pidx, C2), u.reshape(-1, dim),
-                         target.reshape(-1, dim), tol, max_iter, tick)
+        seeds, targets = u.reshape(-1, dim), target.reshape(-1, dim)
+        second = _newton(prob, np.repeat(pidx, C2), seeds, targets, tol, max_iter, tick)
+        _retry(prob, np.repeat(pidx, C2), seeds, targets, second, tol, max_iter, tick,
+               polar=True)
         C = 1 + C2
         u, res, it, conv, stopped = (
             np.concatenate([a[:, None], b.reshape((P, C2) + a.shape[1:])], axis=1)
@@ -885,16 +954,13 @@ def _solve_pairs(prob: _Problem, n_sol: int, use_fan: bool, tol: float, max_iter
         C = u.shape[1]
         idx = np.repeat(pidx, C)
         seeds, targets = u.reshape(-1, dim), target.reshape(-1, dim)
-        u, res, it, conv, stopped = _newton(prob, idx, seeds, targets, tol, max_iter, tick)
-        # candidates that stalled: once more with natural monotonicity
-        retry = np.flatnonzero(~conv & ~stopped & (it > 1))
-        if retry.size:
-            more = _newton(prob, idx[retry], seeds[retry], targets[retry], tol, max_iter,
-                           tick, natural=True)
-            took = retry[more[3]]
-            it[retry] += more[2]
-            for arr, new in zip((u, res, conv), more[:2] + (more[3],)):
-                arr[took] = new[more[3]]
+        out = _newton(prob, idx, seeds, targets, tol, max_iter, tick)
+        # candidates that stalled: once more with natural monotonicity; on Riemannian
+        # specs then with polar steps
+        _retry(prob, idx, seeds, targets, out, tol, max_iter, tick, natural=True)
+        if riemannian:
+            _retry(prob, idx, seeds, targets, out, tol, max_iter, tick, polar=True)
+        u, res, it, conv, stopped = out
     # verification: a plain integration from each converged u0 (the same steps Newton's
     # base state took), the arrival compared modulo the periods, normalisation, direction
     y1 = np.full((P * C, 2 * dim), np.nan)

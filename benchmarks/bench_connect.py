@@ -2,6 +2,7 @@
 
     python benchmarks/bench_connect.py [--quick] [--pairs N] [--scipy-pairs M] [--backend c]
     python benchmarks/bench_connect.py --lensing N [--scipy-sources M] [--backend c]
+    python benchmarks/bench_connect.py --antipodal [--backend c]
 
 WGS84 (specs/ellipsoid.toml, latitude/longitude in radians, metres): N random pairs (10^4;
 1000 with --quick) go through one ``k.connect`` call. The baseline is the general-purpose path:
@@ -182,6 +183,46 @@ def lensing(n: int, backend: str, seed: int, m: int) -> None:
           f"to find")
 
 
+def antipodal(backend: str) -> None:
+    """Nearly antipodal pairs, the hard case of the shortest geodesic. Unit sphere: 60 pairs
+    per band of distance eps from the antipode (x1 at colatitude 0.4..pi-0.4, x2 = its
+    antipode moved by eps in colatitude and eps/2 in longitude), each length against the
+    haversine great-circle angle (closed form; shortest: within 1e-8). WGS84: 60 pairs near
+    the equator within 0.05 deg of latitude and 0.01..0.3 deg of longitude of the antipode,
+    distances against geographiclib (Karney 2013; within 0.1 mm)."""
+    k = metricc.load(ROOT / "specs" / "sphere.toml", backend=backend)
+
+    def angle(x1, x2):
+        t1, p1 = 0.5 * np.pi - x1[:, 0], x1[:, 1]
+        t2, p2 = 0.5 * np.pi - x2[:, 0], x2[:, 1]
+        h = np.sin((t2 - t1) / 2) ** 2 + np.cos(t1) * np.cos(t2) * np.sin((p2 - p1) / 2) ** 2
+        return 2 * np.arcsin(np.sqrt(np.clip(h, 0, 1)))
+    for lo, hi in ((1e-6, 1e-5), (1e-5, 1e-4), (1e-4, 1e-3), (1e-3, 1e-2), (1e-2, 1e-1)):
+        rng = np.random.default_rng(7)
+        x1 = np.stack([rng.uniform(0.4, np.pi - 0.4, 60), rng.uniform(-np.pi, np.pi, 60)], 1)
+        eps = rng.uniform(lo, hi, 60)
+        x2 = np.stack([np.pi - x1[:, 0] + eps, x1[:, 1] + np.pi - 0.5 * eps], 1)
+        t0 = time.perf_counter()
+        sol = k.connect(x1, x2)
+        dt = time.perf_counter() - t0
+        conv = sol.status == "converged"
+        short = conv & (np.abs(sol.length - angle(x1, x2)) <= 1e-8)
+        print(f"unit sphere, eps {lo:g}..{hi:g} rad from antipodal: {int(conv.sum())}/60 "
+              f"converged, {int(short.sum())}/60 the shortest, {dt:.2f} s")
+    from geographiclib.geodesic import Geodesic
+    ke = metricc.load(ROOT / "specs" / "ellipsoid.toml", backend=backend)
+    rng = np.random.default_rng(5)
+    lat1, lon1 = rng.uniform(-3, 3, 60), rng.uniform(-180, 180, 60)
+    lat2, lon2 = -lat1 + rng.uniform(-0.05, 0.05, 60), lon1 + 180 - rng.uniform(0.01, 0.3, 60)
+    ref = np.array([Geodesic.WGS84.Inverse(*v)["s12"] for v in zip(lat1, lon1, lat2, lon2)])
+    sol = ke.connect(np.radians(np.stack([lat1, lon1], 1)), np.radians(np.stack([lat2, lon2], 1)),
+                     rtol=RTOL, atol=ATOL, tol=TOL)
+    err = np.abs(sol.length - ref)
+    print(f"WGS84, 60 pairs within 0.05 deg lat / 0.3 deg lon of antipodal: "
+          f"{int(np.sum((sol.status == 'converged') & (err <= DIST_TOL_M)))}/60 within 0.1 mm of "
+          f"geographiclib (largest error {np.nanmax(err):.2e} m)")
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("--quick", action="store_true", help="1000 pairs, baseline on 10")
@@ -192,12 +233,16 @@ def main() -> None:
     ap.add_argument("--seed", type=int, default=1)
     ap.add_argument("--lensing", type=int, default=None, metavar="N",
                     help="only the Schwarzschild lensing part, N sources")
+    ap.add_argument("--antipodal", action="store_true",
+                    help="only the nearly antipodal accuracy check (sphere bands, WGS84)")
     ap.add_argument("--scipy-sources", type=int, default=10, metavar="M",
                     help="lensing: sources whose converged images go through the scipy path")
     args = ap.parse_args()
     print("command: python " + " ".join([sys.argv[0]] + sys.argv[1:]))
     print(f"python {platform.python_version()}, numpy {np.__version__}, {cpu_model()}, "
           f"{os.cpu_count()} CPUs, {load_average()} at start, checkout {tree_state()}")
+    if args.antipodal:
+        return antipodal(args.backend)
     if args.lensing:
         return lensing(args.lensing, args.backend, args.seed, args.scipy_sources)
     n = args.pairs or (1000 if args.quick else 10_000)

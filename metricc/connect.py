@@ -868,19 +868,24 @@ def connect(k, x_from, x_to, params=None, kind=None, free=None, solutions=1, rto
                       iterations=iters.reshape(shape), residual=resid.reshape(shape))
 
 
-def _retry(prob: _Problem, idx, seeds, targets, out, tol, max_iter, tick, **how):
+def _retry(prob: _Problem, idx, seeds, targets, out, tol, max_iter, tick, cond=None, **how):
     """Newton again, with the options ``how`` (natural=True, polar=True), from the seeds
     (M, dim) of the candidates that stalled (unconverged, not stopped, more than one
     integration); out = (u, res, it, conv, stopped) (M, ...) is updated in place where the
-    second run converges (its integrations are added to it everywhere it ran)."""
+    second run converges (its integrations are added to it everywhere it ran), and so is
+    cond (M,) (see _newton) when given."""
     u, res, it, conv, stopped = out
     rows = np.flatnonzero(~conv & ~stopped & (it > 1))
     if not rows.size:
         return
-    more = _newton(prob, idx[rows], seeds[rows], targets[rows], tol, max_iter, tick, **how)
+    sub = None if cond is None else np.zeros(len(rows))
+    more = _newton(prob, idx[rows], seeds[rows], targets[rows], tol, max_iter, tick,
+                   cond=sub, **how)
     it[rows] += more[2]
     took = more[3]
     u[rows[took]], res[rows[took]], conv[rows[took]] = more[0][took], more[1][took], True
+    if cond is not None:
+        cond[rows[took]] = sub[took]
 
 
 def _distinct(prob: _Problem, uu, okm):
@@ -930,6 +935,10 @@ def _solve_pairs(prob: _Problem, n_sol: int, use_fan: bool, tol: float, max_iter
         # the full fan as below
         cond = np.zeros(P)
         first = _newton(prob, pidx, u[:, 0], target[:, 0], tol, max_iter, tick, cond=cond)
+        # a stalled first guess is retried with polar steps before the pair falls back to
+        # the full fan (rays over all windings, several times as long)
+        _retry(prob, pidx, u[:, 0], target[:, 0], first, tol, max_iter, tick, cond=cond,
+               polar=True)
         known = np.where(first[3][:, None], first[0], np.nan)
         K = n_sol + 5
         fu, ft, _ = _Fan(prob, pidx, known=known, known_cond=cond).seeds(K, n_sol, tick)

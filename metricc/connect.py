@@ -576,10 +576,26 @@ class _Fan:
             group = np.flatnonzero((n_samp == S) & np.all(np.isfinite(u), axis=1))
             step = max(1, FAN_MEMORY // ((S + 1) * 2 * dim))
             chunks += [(int(S), group[c:c + step]) for c in range(0, len(group), step)]
-        for S, rows in chunks:
+        def run(chunk):
+            S, rows = chunk
             pid = self.pidx[sel[rows]]
             y0 = np.concatenate([prob.x_from[pid], u[rows]], axis=1)
-            j, shift, fmin, samp = self._pass(pid, y0, 1.0, S, first=self.reach[sel[rows]] / S)
+            return self._run(pid, y0, 1.0, S)
+
+        # a pipeline: the next chunk integrates (C, GIL released) while this one's samples
+        # are scanned (NumPy), so the cores are not idle during the scan
+        from concurrent.futures import ThreadPoolExecutor
+        pool = ThreadPoolExecutor(max_workers=1) if len(chunks) > 1 else None
+        ahead = pool.submit(run, chunks[0]) if pool is not None else None
+        for c, (S, rows) in enumerate(chunks):
+            if pool is not None:
+                samp = ahead.result()
+                if c + 1 < len(chunks):
+                    ahead = pool.submit(run, chunks[c + 1])
+            else:
+                samp = run((S, rows))
+            pid = self.pidx[sel[rows]]
+            j, shift, fmin, samp = self._scan(pid, samp, S, first=self.reach[sel[rows]] / S)
             # a ray closest at its start never comes nearer: no seed (and no plateau of
             # equal minima crowding out real ones); in a search for shorter geodesics, nor
             # does one closest at its far end
@@ -594,6 +610,8 @@ class _Fan:
             lam_c[rows] = (j + shift) / S
             xc[rows] = samp[ar, j]
             spacing[rows] = 1.0 / S
+        if pool is not None:
+            pool.shutdown()
         again = np.isfinite(dist) if refine is None else np.isfinite(dist) & refine(dist)
         fine = max(8, FAN_SAMPLES // 2)
         chunk = max(1, FAN_MEMORY // ((fine + 1) * 2 * dim))
@@ -614,11 +632,18 @@ class _Fan:
         the parabola's shift (in samples) and minimum of the squared distance, the samples.
         first: None (the closest sample) or the path length between samples (r,): then the
         first local minimum within 2x of the closest, or within a sample spacing of it."""
-        prob, dim = self.prob, self.prob.dim
+        return self._scan(pid, self._run(pid, y0, lam_end, S), S, first)
+
+    def _run(self, pid, y0, lam_end, S):
+        """The samples (r, S+1, 2 dim) of the rays y0 (r, 2 dim) at S+1 equal steps."""
+        prob = self.prob
         lam = np.linspace(0.0, lam_end, S + 1)
-        out = prob.k.integrate(y0, lam_end, params=prob.take_params(pid), samples=lam,
-                               rtol=max(prob.rtol, FAN_RTOL), atol=prob.atol)
-        samp = out.samples
+        return prob.k.integrate(y0, lam_end, params=prob.take_params(pid), samples=lam,
+                                rtol=max(prob.rtol, FAN_RTOL), atol=prob.atol).samples
+
+    def _scan(self, pid, samp, S, first):
+        """_pass on integrated samples."""
+        prob, dim = self.prob, self.prob.dim
         d = samp[:, :, :dim] - prob.x_to[pid][:, None, :]
         for i, p in prob.periods.items():
             per = p[pid][:, None]

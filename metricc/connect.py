@@ -537,15 +537,17 @@ class _Fan:
                 use = self.short & (known_cond >= KNOWN_COND)
                 self.known_e = np.where(use[:, None], ke, np.nan)
 
-    def hopeless(self, dist, nb):
+    def hopeless(self, dist, nb, pairs=None):
         """Short-search rays that cannot hold a shorter geodesic nearby: dist (P, Q) closest
-        approaches, nb (Q, q) neighbour lists -> (P, Q) bool. The closest approach D(e) is
+        approaches (rows: the pairs ``pairs``, all by default), nb (Q, q) neighbour lists
+        -> (P, Q) bool. The closest approach D(e) is
         continuous in the direction and V-shaped around a direction that hits x_to, where
         the sample nearest the zero has D <= 1/2 of the largest rise to a neighbour."""
         with np.errstate(invalid="ignore"):
             rise = np.max(np.where(np.isfinite(dist[:, nb]), dist[:, nb], -np.inf), axis=2) - dist
             out = dist > SPREAD * rise
-        return self.short[:, None] & np.isfinite(dist) & out
+        short = self.short if pairs is None else self.short[pairs]
+        return short[:, None] & np.isfinite(dist) & out
 
     def velocities(self, sel, e):
         """u (R, dim) for pair rows sel (R,) and unit directions e (R, m)."""
@@ -722,41 +724,47 @@ class _Fan:
                 done = np.sum(close, axis=1) >= wanted
                 if done.all():
                     break
-                old = pool
+                # only the pairs still zooming with a track left: the others keep their pool
+                act = np.flatnonzero(~done & np.isfinite(cd).any(axis=1))
+                if not act.size:
+                    break
+                A_ = len(act)
+                ce = ce[act]
                 # orthonormal tangent basis at each centre
                 A = np.concatenate([ce[..., None], np.broadcast_to(fill, ce.shape[:2] + (m, m - 1))],
                                    axis=-1)
                 Q, _ = np.linalg.qr(A)
-                T = Q[..., 1:]                                      # (P, K, m, m-1)
+                T = Q[..., 1:]                                      # (A, K, m, m-1)
                 dirs = ce[:, :, None, :] + w * np.einsum("pkij,nj->pkni", T, grid)
                 dirs /= np.linalg.norm(dirs, axis=-1, keepdims=True)
                 npt = grid.shape[0]
-                live = np.isfinite(cd) & ~done[:, None]
+                live = np.isfinite(cd[act])
                 rows = np.flatnonzero(np.repeat(live.ravel(), npt))
-                dd = np.full(P * K * npt, np.inf)
-                ll = np.zeros(P * K * npt)
-                xx = np.zeros((P * K * npt, 2 * self.prob.dim))
+                dd = np.full(A_ * K * npt, np.inf)
+                ll = np.zeros(A_ * K * npt)
+                xx = np.zeros((A_ * K * npt, 2 * self.prob.dim))
                 if rows.size:
-                    s2 = np.repeat(np.arange(P), K * npt)[rows]
+                    s2 = np.repeat(act, K * npt)[rows]
                     dd[rows], ll[rows], xx[rows] = self.closest(s2, dirs.reshape(-1, m)[rows])
-                dd = dd.reshape(P, K, npt)
-                dd = np.where(self.hopeless(dd.reshape(P, K * npt),
+                dd = dd.reshape(A_, K, npt)
+                dd = np.where(self.hopeless(dd.reshape(A_, K * npt),
                                             (nbp[None, :, :] + npt * np.arange(K)[:, None, None])
-                                            .reshape(K * npt, -1)).reshape(P, K, npt),
+                                            .reshape(K * npt, -1), pairs=act).reshape(A_, K, npt),
                               np.inf, dd)
                 is_min = dd <= np.min(dd[:, :, nbp], axis=3)
                 # each track's own best point first (a track is never crowded out by the
                 # other minima of a better one), then the other minima fill free slots
                 # (where one cone resolves into two images)
-                own = np.zeros((P, K, npt), dtype=bool)
-                pk = np.indices((P, K))
+                own = np.zeros((A_, K, npt), dtype=bool)
+                pk = np.indices((A_, K))
                 own[pk[0], pk[1], np.argmin(dd, axis=2)] = True
-                pool = _select(np.where(is_min | own, dd, np.inf).reshape(P, K * npt),
-                               dirs.reshape(P, K * npt, m), ll.reshape(P, K * npt),
-                               xx.reshape(P, K * npt, -1), K, w * step,
-                               first=own.reshape(P, K * npt))
-                pool = tuple(np.where(done.reshape((P,) + (1,) * (a.ndim - 1)), b, a)
-                             for a, b in zip(pool, old))
+                new = _select(np.where(is_min | own, dd, np.inf).reshape(A_, K * npt),
+                              dirs.reshape(A_, K * npt, m), ll.reshape(A_, K * npt),
+                              xx.reshape(A_, K * npt, -1), K, w * step,
+                              first=own.reshape(A_, K * npt))
+                pool = tuple(a.copy() for a in pool)
+                for a, b in zip(pool, new):
+                    a[act] = b
                 w *= ZOOM_SHRINK
                 tick()
         dist, e, lam, xc = pool
@@ -779,6 +787,19 @@ def _select(d, e, lam, xc, K, sep, first=None):
     marked ``first`` before the others): (d (P, K), e (P, K, m), lam (P, K), xc (P, K,
     dim)); missing entries have d = inf."""
     P, Q = d.shape
+    some = np.isfinite(d).any(axis=1)
+    if not some.all():
+        # rows without a finite entry (most pairs of a search for something shorter) have
+        # nothing to select: the loop below runs over the others only
+        out = (np.full((P, K), np.inf), np.zeros((P, K, e.shape[-1])), np.zeros((P, K)),
+               np.zeros((P, K, xc.shape[-1])))
+        out[1][..., 0] = 1.0
+        if some.any():
+            part = _select(d[some], e[some], lam[some], xc[some], K, sep,
+                           None if first is None else first[some])
+            for o, v in zip(out, part):
+                o[some] = v
+        return out
     if first is None:
         order = np.argsort(d, axis=1, kind="stable")[:, :4 * K]
     else:

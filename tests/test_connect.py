@@ -32,7 +32,8 @@ after a first one converged left out (its fan seeds dropped): test_hill_shortest
 fails (it returns the path over the top); natural monotonicity never used (natural=False
 in every _newton call): test_schwarzschild_image_ill_conditioned fails (no_convergence);
 polar steps never taken (straight steps in the polar retry): test_sphere_near_antipodal's
-1e-4 .. 1e-2 band fails on both backends.
+1e-4 .. 1e-2 band fails on both backends; the fan's pipeline fed the wrong chunk (c + 2 for
+c + 1): test_fan_chunks_change_nothing fails.
 """
 from __future__ import annotations
 
@@ -493,3 +494,24 @@ def test_arguments(sphere, flat):
         flat.connect(FLAT_FROM, FLAT_TO, free=["q"], kind="null")
     with pytest.raises(ValueError, match="solutions"):
         sphere.connect([1.0, 0.0], [2.0, 1.0], solutions=0)
+
+
+@needs_cc
+def test_fan_chunks_change_nothing(monkeypatch):
+    # the fan's first pass integrates chunk c + 1 while chunk c is scanned; a batch of
+    # usual size fits one chunk, so the pipeline is forced here with a tiny memory budget:
+    # the answers must be the same bit for bit (shortest search and the full fan, solutions=2)
+    import metricc.connect as connect_module
+    k = metricc.load(SPECS / "sphere.toml", backend="c")
+    rng = np.random.default_rng(11)
+    n = 12
+    x1 = np.stack([rng.uniform(0.4, np.pi - 0.4, n), rng.uniform(-np.pi, np.pi, n)], 1)
+    eps = np.exp(rng.uniform(np.log(1e-3), np.log(1e-1), n))
+    x2 = np.stack([np.pi - x1[:, 0] + eps, x1[:, 1] + np.pi - 0.5 * eps], 1)
+    one = [k.connect(x1, x2), k.connect(x1, x2, solutions=2)]
+    monkeypatch.setattr(connect_module, "FAN_MEMORY", 2 ** 11)   # about 30 rays a chunk
+    many = [k.connect(x1, x2), k.connect(x1, x2, solutions=2)]
+    for a, b in zip(one, many):
+        assert list(np.ravel(a.status)) == list(np.ravel(b.status))
+        np.testing.assert_array_equal(a.y0, b.y0)
+        np.testing.assert_array_equal(a.length, b.length)
